@@ -1,0 +1,44 @@
+#pragma once
+/// \file atomic_file.h
+/// Output files appear complete or not at all: write to a temporary sibling
+/// name, then rename over the final name. Nothing the user had is overwritten
+/// unless they asked (`overwrite`).
+
+#include <string>
+
+#include "lumenrig/capture_io/status.h"
+
+namespace lumenrig::io {
+
+/// A temporary sibling of `final_path` ("<dir>/.<name>.tmp-<pid>-<n>").
+/// Commit() renames it onto final_path; the destructor removes an
+/// uncommitted temporary.
+class AtomicFile {
+ public:
+  explicit AtomicFile(std::string final_path);
+  ~AtomicFile();
+  AtomicFile(const AtomicFile&) = delete;
+  AtomicFile& operator=(const AtomicFile&) = delete;
+
+  const std::string& temp_path() const { return temp_path_; }
+  const std::string& final_path() const { return final_path_; }
+  /// fsyncs the temporary and renames it to the final name.
+  Status Commit();
+
+ private:
+  std::string final_path_;
+  std::string temp_path_;
+  bool committed_ = false;
+};
+
+/// OK when `path` does not exist, or exists and `overwrite` is true; otherwise
+/// a BadInput naming the file and saying how to proceed (--force).
+Status CheckOutputPath(const std::string& path, bool overwrite);
+
+/// Creates a folder and its parents; error names the folder.
+Status EnsureDirectory(const std::string& dir);
+
+/// Writes text atomically.
+Status WriteTextFile(const std::string& path, const std::string& text, bool overwrite);
+
+}  // namespace lumenrig::io
