@@ -288,6 +288,7 @@ cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdro
 
 void ApplySensor(const SimOptions& options, int camera_index, uint64_t frame_key, cv::Mat* image, int threads) {
   const int channels = image->channels();
+  const float black = static_cast<float>(options.black_level);
   const int w = image->cols;
   io::ParallelFor(0, image->rows, kRowGrain, threads, [&](int64_t y0, int64_t y1) {
     for (int64_t y = y0; y < y1; ++y) {
@@ -301,7 +302,7 @@ void ApplySensor(const SimOptions& options, int camera_index, uint64_t frame_key
           const float shot_sigma = std::sqrt(std::max(0.0f, v) / options.full_well_electrons);
           v += shot_sigma * gauss(rng) + options.read_noise * gauss(rng);
         }
-        row[i] = std::clamp(v + options.black_level, 0.0f, 1.0f);
+        row[i] = std::clamp(v + black, 0.0f, 1.0f);
       }
     }
   });

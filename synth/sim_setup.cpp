@@ -54,7 +54,7 @@ io::Status ValidateSimOptions(const SimOptions& o) {
   if (!(o.view_height_m > 0.05)) return bad(fmt::format("view height: {} m must exceed 0.05 m", o.view_height_m));
   if (o.supersample < 1 || o.supersample > 16) return bad(fmt::format("supersample: {} is outside [1, 16]", o.supersample));
   if (o.tracking_every < 0) return bad(fmt::format("tracking every: {} must be >= 0", o.tracking_every));
-  if (!(o.black_level >= 0.0f && o.black_level < 0.5f)) return bad(fmt::format("black level: {} is outside [0, 0.5)", o.black_level));
+  if (!(o.black_level >= 0.0 && o.black_level < 0.5)) return bad(fmt::format("black level: {} is outside [0, 0.5)", o.black_level));
   if (!(o.read_noise >= 0.0f) || !(o.full_well_electrons > 0.0f)) return bad("noise: read noise must be >= 0 and full well > 0");
   if (o.subject.empty()) return bad("subject: empty name");
   const SimFaults& f = o.faults;
@@ -144,6 +144,7 @@ std::vector<io::Camera> MakeSimCameras(const SimOptions& o) {
     cam.camera_from_rig = Eigen::Matrix4d::Identity();
     cam.camera_from_rig.topLeftCorner<3, 3>() = r;
     cam.camera_from_rig.topRightCorner<3, 1>() = -r * centre_rig;
+    cam.camera_from_rig.array() += 0.0;  // no negative zeros in session.json
     cam.has_camera_from_rig = true;
     io::Intrinsics in;
     in.fy = o.height * o.camera_distance_m / o.view_height_m;

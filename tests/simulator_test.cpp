@@ -16,7 +16,7 @@ SimOptions PlainOptions() {
   o.height = 72;
   o.num_lights = 12;
   o.noise = false;
-  o.black_level = 0.0f;
+  o.black_level = 0.0;
   o.specular = SpecularModel::kNone;
   o.shadows = false;
   o.tracking_every = 0;
@@ -196,7 +196,7 @@ TEST(SimulatorDeterminism, InMemoryFramesIdenticalForOneAndTwoThreads) {
 TEST(SimulatorFaults, DeadLightFrameHoldsOnlyBlackLevelAndNoise) {
   SimOptions o = PlainOptions();
   o.noise = true;
-  o.black_level = 0.01f;
+  o.black_level = 0.01;
   o.faults.dead_light = CameraLightTarget{"cam00", 3};
   auto sim = SimulateCamera(o, 0);
   ASSERT_TRUE(sim.ok());

@@ -87,7 +87,7 @@ struct SimOptions {
   int supersample = 4;  ///< per axis, on silhouette and hair pixels (edge anti-aliasing)
   // Sensor.
   bool noise = true;
-  float black_level = 0.01f;           ///< added to every stored frame (session black_level)
+  double black_level = 0.01;           ///< added to every stored frame (session black_level)
   float read_noise = 0.002f;           ///< Gaussian sigma, normalised units
   float full_well_electrons = 6000.f;  ///< shot noise: variance = signal / full_well
   uint64_t seed = 1;
