@@ -275,6 +275,8 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
 
 io::Status WriteSimRig(const SimOptions& options, const std::string& path) {
   LUMENRIG_RETURN_IF_ERROR(ValidateSimOptions(options));
+  const fs::path parent = fs::absolute(path).parent_path();
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(parent.string()));
   return io::WriteTextFile(path, io::RigToJson(MakeSimRig(options)).dump(2) + "\n", options.overwrite);
 }
 
