@@ -179,6 +179,12 @@ CameraView CameraView::Build(const SimOptions& options, const io::Camera& camera
     view.samples_.insert(view.samples_.end(), row_samples[y].begin(), row_samples[y].end());
   }
   view.offsets_[static_cast<size_t>(w) * h] = running;
+  view.alpha_.assign(static_cast<size_t>(w) * h, 0.0f);
+  for (size_t i = 0; i + 1 < view.offsets_.size(); ++i) {
+    double a = 0.0;
+    for (int k = view.offsets_[i]; k < view.offsets_[i + 1]; ++k) a += view.samples_[k].weight;
+    view.alpha_[i] = static_cast<float>(std::min(1.0, a));
+  }
   return view;
 }
 
@@ -207,13 +213,31 @@ TruthMaps CameraView::Truth() const {
       a /= alpha;
       t.normals.at<cv::Vec3f>(y, x) = cv::Vec3f(static_cast<float>(n.x()), static_cast<float>(n.y()), static_cast<float>(n.z()));
       t.albedo.at<cv::Vec3f>(y, x) = cv::Vec3f(static_cast<float>(a.x()), static_cast<float>(a.y()), static_cast<float>(a.z()));
-      const float alpha_f = std::min(1.0f, static_cast<float>(alpha));
+      const float alpha_f = alpha_[i];
       t.alpha.at<float>(y, x) = alpha_f;
       t.depth.at<float>(y, x) = static_cast<float>(depth / alpha);
       t.mask.at<uint8_t>(y, x) = alpha_f > 0.5f ? 255 : 0;
     }
   }
   return t;
+}
+
+cv::Mat CameraView::Composite(const cv::Mat& subject_radiance, double scale, Backdrop backdrop) const {
+  cv::Mat out(height_, width_, CV_32FC3);
+  for (int y = 0; y < height_; ++y) {
+    const cv::Vec3f* src = subject_radiance.ptr<cv::Vec3f>(y);
+    cv::Vec3f* dst = out.ptr<cv::Vec3f>(y);
+    for (int x = 0; x < width_; ++x) {
+      Eigen::Vector3d v(src[x][0] * scale, src[x][1] * scale, src[x][2] * scale);
+      const double alpha = alpha_[static_cast<size_t>(y) * width_ + x];
+      if (backdrop != Backdrop::kBlack && alpha < 1.0) {
+        const Eigen::Vector3f& xy = backdrop_xy_[static_cast<size_t>(y) * width_ + x];
+        v += (1.0 - alpha) * BackdropRadiance(backdrop, xy.x(), xy.y()).cast<double>();
+      }
+      dst[x] = cv::Vec3f(static_cast<float>(v.x()), static_cast<float>(v.y()), static_cast<float>(v.z()));
+    }
+  }
+  return out;
 }
 
 cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdrop, bool show_subject, int threads) const {
@@ -241,12 +265,10 @@ cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdro
       for (int x = 0; x < width_; ++x) {
         const size_t i = static_cast<size_t>(y) * width_ + x;
         Eigen::Vector3d radiance = Eigen::Vector3d::Zero();
-        double alpha = 0.0;
-        if (show_subject) {
+        const double alpha = show_subject ? alpha_[i] : 0.0;
+        if (show_subject && !prepared.empty()) {
           for (int k = offsets_[i]; k < offsets_[i + 1]; ++k) {
             const Sample& s = samples_[k];
-            alpha += s.weight;
-            if (prepared.empty()) continue;
             const SpecularParams sp = SpecularFor(s.material);
             const Eigen::Vector3d v = (centre_rig_ - s.position).normalized();
             const Eigen::Vector3d albedo = s.albedo.cast<double>();
@@ -273,7 +295,6 @@ cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdro
             radiance += s.weight * acc;
           }
         }
-        alpha = std::min(1.0, alpha);
         if (backdrop != Backdrop::kBlack && alpha < 1.0) {
           const Eigen::Vector3f& xy = backdrop_xy_[i];
           radiance += (1.0 - alpha) * BackdropRadiance(backdrop, xy.x(), xy.y()).cast<double>();

@@ -12,6 +12,7 @@ Primitive Ellipsoid(Eigen::Vector3d centre, Eigen::Vector3d radii, Material mate
   p.kind = Primitive::Kind::kEllipsoid;
   p.centre = centre;
   p.radii = radii;
+  p.inv_radii = radii.cwiseInverse();
   p.material = material;
   return p;
 }
@@ -21,6 +22,7 @@ Primitive CylinderY(double x, double z, double radius, double y_min, double y_ma
   p.kind = Primitive::Kind::kCylinderY;
   p.centre = Eigen::Vector3d(x, 0.5 * (y_min + y_max), z);
   p.radii = Eigen::Vector3d(radius, radius, radius);
+  p.inv_radii = p.radii.cwiseInverse();
   p.y_min = y_min;
   p.y_max = y_max;
   return p;
@@ -30,8 +32,8 @@ Primitive CylinderY(double x, double z, double radius, double y_min, double y_ma
 bool QuadricRoots(const Primitive& prim, const Eigen::Vector3d& o, const Eigen::Vector3d& d, double* t0, double* t1) {
   double a, b, c;
   if (prim.kind == Primitive::Kind::kEllipsoid) {
-    const Eigen::Vector3d oc = (o - prim.centre).cwiseQuotient(prim.radii);
-    const Eigen::Vector3d dc = d.cwiseQuotient(prim.radii);
+    const Eigen::Vector3d oc = (o - prim.centre).cwiseProduct(prim.inv_radii);
+    const Eigen::Vector3d dc = d.cwiseProduct(prim.inv_radii);
     a = dc.squaredNorm();
     b = 2.0 * oc.dot(dc);
     c = oc.squaredNorm() - 1.0;

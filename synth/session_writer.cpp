@@ -36,7 +36,8 @@ std::map<std::string, std::string> Provenance(const SimOptions& o, const std::st
           {"lumenrig:seed", std::to_string(o.seed)}};
 }
 
-io::Status WriteTruth(const SimOptions& o, const CameraView& view, const io::Rig& rig, const std::string& camera_id,
+/// `all_lights` is view.Render(every light at gain 1, kBlack, true).
+io::Status WriteTruth(const SimOptions& o, const CameraView& view, const cv::Mat& all_lights, const std::string& camera_id,
                       const std::string& truth_dir) {
   const TruthMaps truth = view.Truth();
   io::ExrWriteOptions exr;
@@ -52,7 +53,7 @@ io::Status WriteTruth(const SimOptions& o, const CameraView& view, const io::Rig
   LUMENRIG_RETURN_IF_ERROR(io::WriteExr(truth_dir + "/depth.exr", truth.depth, depth_exr));
   // Un-premultiplied foreground under the lighting of the lit frame and the
   // matte pairs (all lights, LitExposure), noise free.
-  cv::Mat premult = view.Render(internal::AllLights(rig, LitExposure(o)), Backdrop::kBlack, true, o.threads);
+  const cv::Mat premult = view.Composite(all_lights, LitExposure(o), Backdrop::kBlack);
   cv::Mat foreground = cv::Mat::zeros(premult.size(), CV_32FC3);
   for (int y = 0; y < premult.rows; ++y) {
     for (int x = 0; x < premult.cols; ++x) {
@@ -124,7 +125,9 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
     LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(truth_dir));
 
     const CameraView view = CameraView::Build(o, cam, 0.0, 0.0, o.threads);
-    LUMENRIG_RETURN_IF_ERROR(WriteTruth(o, view, rig, cam.id, truth_dir));
+    // Every fully lit frame without motion is a multiple of this one render.
+    const cv::Mat all_lights = view.Render(internal::AllLights(rig, 1.0), Backdrop::kBlack, true, o.threads);
+    LUMENRIG_RETURN_IF_ERROR(WriteTruth(o, view, all_lights, cam.id, truth_dir));
     truth_files += 6;
     LUMENRIG_RETURN_IF_ERROR(io::WritePng(cam_dir + "/mask.png", view.Truth().mask, o.overwrite));
     cam.mask = cam_dir + "/mask.png";
@@ -210,7 +213,12 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
           }
           case JobKind::kTracking: {
             const double t = internal::Progress(o, job.light_index);
-            frame = render_at(t, internal::AllLights(rig, lit_exposure * internal::DriftGain(o, t)), Backdrop::kBlack);
+            const double gain = lit_exposure * internal::DriftGain(o, t);
+            if (f.motion_px * t == 0.0) {
+              frame = view.Composite(all_lights, gain, Backdrop::kBlack);
+            } else {
+              frame = render_at(t, internal::AllLights(rig, gain), Backdrop::kBlack);
+            }
             what = "tracking";
             break;
           }
@@ -227,7 +235,7 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
             what = "backlit";
             break;
           case JobKind::kLit:
-            frame = view.Render(internal::AllLights(rig, lit_exposure), Backdrop::kStudioWall, true, 1);
+            frame = view.Composite(all_lights, lit_exposure, Backdrop::kStudioWall);
             what = "lit";
             break;
           case JobKind::kMattePlate:
@@ -235,8 +243,7 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
             what = "matte plate";
             break;
           case JobKind::kMatteFrame:
-            frame = view.Render(internal::AllLights(rig, lit_exposure), job.matte == 0 ? Backdrop::kMatteA : Backdrop::kMatteB,
-                                true, 1);
+            frame = view.Composite(all_lights, lit_exposure, job.matte == 0 ? Backdrop::kMatteA : Backdrop::kMatteB);
             what = "matte frame";
             break;
         }

@@ -22,8 +22,12 @@ void ExpectSameRig(const io::Rig& loaded, const io::Rig& generated) {
     EXPECT_EQ(a.id, b.id);
     EXPECT_EQ(a.direction.has_value(), b.direction.has_value());
     EXPECT_EQ(a.position.has_value(), b.position.has_value());
-    if (a.direction) EXPECT_LT((*a.direction - *b.direction).norm(), 1e-12) << "light " << a.id;
-    if (a.position) EXPECT_LT((*a.position - *b.position).norm(), 1e-12) << "light " << a.id;
+    if (a.direction && b.direction) {
+      EXPECT_LT((*a.direction - *b.direction).norm(), 1e-12) << "light " << a.id;
+    }
+    if (a.position && b.position) {
+      EXPECT_LT((*a.position - *b.position).norm(), 1e-12) << "light " << a.id;
+    }
     EXPECT_LT((a.intensity - b.intensity).norm(), 1e-12) << "light " << a.id;
   }
 }

@@ -27,6 +27,7 @@ struct Primitive {
   Kind kind = Kind::kEllipsoid;
   Eigen::Vector3d centre = Eigen::Vector3d::Zero();  ///< cylinder: x,z of the axis
   Eigen::Vector3d radii = Eigen::Vector3d::Ones();   ///< cylinder: radii.x() is the radius
+  Eigen::Vector3d inv_radii = Eigen::Vector3d::Ones();  ///< 1 / radii (set by the scene)
   double y_min = 0, y_max = 0;                       ///< cylinder extent in y
   Material material = Material::kPlaster;
 };

@@ -151,6 +151,14 @@ class CameraView {
   /// holds exactly. `show_subject` false renders the backdrop alone.
   cv::Mat Render(const std::vector<LitLight>& lights, Backdrop backdrop, bool show_subject, int threads = 0) const;
 
+  /// scale * subject_radiance + (1 - alpha) * backdrop, for frames whose
+  /// lighting is a multiple of one rendered with Render(..., kBlack, true):
+  /// fully lit frames at different exposures or drift gains share one render.
+  cv::Mat Composite(const cv::Mat& subject_radiance, double scale, Backdrop backdrop) const;
+
+  /// Fractional coverage of pixel (x, y).
+  float Alpha(int x, int y) const { return alpha_[static_cast<size_t>(y) * width_ + x]; }
+
   int width() const { return width_; }
   int height() const { return height_; }
 
@@ -169,6 +177,7 @@ class CameraView {
   Eigen::Matrix3d camera_from_rig_r_;
   Eigen::Vector3d centre_rig_;          // camera centre
   std::vector<Eigen::Vector3f> backdrop_xy_;  // per pixel backdrop plane (x, y, unused)
+  std::vector<float> alpha_;             // per pixel coverage, <= 1
   std::vector<int> offsets_;            // samples of pixel i: [offsets_[i], offsets_[i+1])
   std::vector<Sample> samples_;
 };
