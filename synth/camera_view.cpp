@@ -19,7 +19,7 @@ constexpr double kBackdropBehind_m = 0.9;
 constexpr double kShadowEpsilon_m = 1e-6;
 
 struct SpecularParams {
-  double ks = 0.0;        // lobe weight
+  double ks = 0.0;        // Blinn-Phong lobe weight; GGX: Schlick F0
   double exponent = 1.0;  // Blinn-Phong exponent
   double roughness = 1.0; // GGX alpha
 };
@@ -52,9 +52,9 @@ double SpecularTerm(SpecularModel model, const SpecularParams& sp, const Eigen::
   const double d = a2 / (M_PI * denom * denom);
   const double k = sp.roughness / 2.0;
   const double g = (n_dot_l / (n_dot_l * (1.0 - k) + k)) * (n_dot_v / (n_dot_v * (1.0 - k) + k));
-  const double f0 = 0.04;
+  const double f0 = sp.ks;  // Schlick: reflectance at normal incidence
   const double f = f0 + (1.0 - f0) * std::pow(1.0 - std::max(0.0, h.dot(v)), 5.0);
-  return sp.ks / f0 * d * g * f / (4.0 * n_dot_v);
+  return d * g * f / (4.0 * n_dot_v);
 }
 
 }  // namespace

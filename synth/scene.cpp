@@ -90,8 +90,8 @@ Scene::Scene(const Eigen::Vector3d& subject_offset_rig, bool with_hair) : offset
   primitives_ = {
       Ellipsoid(o + head_c, head_r),                                                       // head
       Ellipsoid(o + Eigen::Vector3d(0.0, 0.083, 0.081), Eigen::Vector3d(0.013, 0.028, 0.022)),  // nose
-      Ellipsoid(o + Eigen::Vector3d(0.0, 0.032, 0.045), Eigen::Vector3d(0.038, 0.030, 0.036)),  // chin
-      Ellipsoid(o + Eigen::Vector3d(0.0, 0.128, 0.052), Eigen::Vector3d(0.056, 0.020, 0.032)),  // brow
+      Ellipsoid(o + Eigen::Vector3d(0.0, 0.030, 0.040), Eigen::Vector3d(0.030, 0.025, 0.028)),  // chin
+      Ellipsoid(o + Eigen::Vector3d(0.0, 0.125, 0.064), Eigen::Vector3d(0.050, 0.014, 0.024)),  // brow
       Ellipsoid(o + Eigen::Vector3d(0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)),  // ear +x
       Ellipsoid(o + Eigen::Vector3d(-0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)), // ear -x
       CylinderY(o.x(), o.z() - 0.005, 0.042, o.y() - 0.10, o.y() + 0.05),                    // neck

@@ -37,7 +37,7 @@ enum class LightLayout {
 enum class SpecularModel {
   kNone,        ///< Lambertian only
   kBlinnPhong,  ///< normalised Blinn-Phong lobe, ks (e+8)/(8 pi) (n.h)^e n.l
-  kGgx,         ///< Cook-Torrance with GGX distribution, Smith-Schlick G, Schlick F0 = 0.04
+  kGgx,         ///< Cook-Torrance: GGX distribution, Smith-Schlick G, Schlick Fresnel (F0 0.05 plaster, 0.06 sphere)
 };
 
 /// A fault aimed at one camera's frame of one light (light = rig light id).
