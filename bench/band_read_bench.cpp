@@ -141,8 +141,8 @@ struct ChildResult {
 };
 
 ChildResult RunChild(const Args& a, const std::vector<std::string>& extra) {
-  std::vector<std::string> argv_s{"/proc/self/exe", "--dir", a.dir, "--frames", std::to_string(a.frames),
-                                  "--size", std::to_string(a.size)};
+  std::vector<std::string> argv_s{"/proc/self/exe",      "--dir", a.dir, "--frames", std::to_string(a.frames), "--size",
+                                  std::to_string(a.size)};
   argv_s.insert(argv_s.end(), extra.begin(), extra.end());
   std::vector<char*> argv;
   for (auto& s : argv_s) argv.push_back(s.data());
@@ -169,7 +169,8 @@ ChildResult RunChild(const Args& a, const std::vector<std::string>& extra) {
   wait4(pid, &status, 0, &usage);
   r.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
   r.peak_rss_mib = usage.ru_maxrss / 1024.0;  // KiB on Linux
-  r.cpu_seconds = usage.ru_utime.tv_sec + usage.ru_stime.tv_sec + 1e-6 * (usage.ru_utime.tv_usec + usage.ru_stime.tv_usec);
+  r.cpu_seconds =
+      usage.ru_utime.tv_sec + usage.ru_stime.tv_sec + 1e-6 * (usage.ru_utime.tv_usec + usage.ru_stime.tv_usec);
   r.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : 128;
   while (!r.output.empty() && r.output.back() == '\n') r.output.pop_back();
   return r;
@@ -179,11 +180,16 @@ bool Parse(int argc, char** argv, Args* a) {
   for (int i = 1; i < argc; ++i) {
     const std::string k = argv[i];
     auto next = [&]() -> std::string { return i + 1 < argc ? argv[++i] : ""; };
-    if (k == "--dir") a->dir = next();
-    else if (k == "--frames") a->frames = std::stoi(next());
-    else if (k == "--size") a->size = std::stoi(next());
-    else if (k == "--mode") a->mode = next();
-    else if (k == "--band") a->band = std::stoi(next());
+    if (k == "--dir")
+      a->dir = next();
+    else if (k == "--frames")
+      a->frames = std::stoi(next());
+    else if (k == "--size")
+      a->size = std::stoi(next());
+    else if (k == "--mode")
+      a->mode = next();
+    else if (k == "--band")
+      a->band = std::stoi(next());
     else if (k == "--bands") {
       a->bands.clear();
       std::string list = next();
@@ -218,7 +224,8 @@ int main(int argc, char** argv) {
     // Warm the page cache so every mode reads from memory.
     std::ifstream in(FramePath(a, i), std::ios::binary);
     std::vector<char> chunk(1 << 20);
-    while (in.read(chunk.data(), static_cast<std::streamsize>(chunk.size())) || in.gcount() > 0) {}
+    while (in.read(chunk.data(), static_cast<std::streamsize>(chunk.size())) || in.gcount() > 0) {
+    }
     bytes += fs::file_size(FramePath(a, i));
   }
   fmt::print("stack: {} frames of {}x{} half RGB, ZIP, {:.0f} MiB on disk, in {}\n", a.frames, a.size, a.size,
@@ -230,8 +237,8 @@ int main(int argc, char** argv) {
              idle.seconds, idle.cpu_seconds, "-", "-", idle.peak_rss_mib);
   const ChildResult whole = RunChild(a, {"--mode", "whole"});
   if (whole.exit_code != 0) return 3;
-  fmt::print("{:<12} {:>9.2f} {:>9.2f} {:>10.3f} {:>10.3f} {:>13.1f}  {}\n", "whole", whole.seconds,
-             whole.cpu_seconds, 1.0, 1.0, whole.peak_rss_mib, whole.output);
+  fmt::print("{:<12} {:>9.2f} {:>9.2f} {:>10.3f} {:>10.3f} {:>13.1f}  {}\n", "whole", whole.seconds, whole.cpu_seconds,
+             1.0, 1.0, whole.peak_rss_mib, whole.output);
   bool ok = true;
   for (int band : a.bands) {
     const ChildResult r = RunChild(a, {"--mode", "band", "--band", std::to_string(band)});

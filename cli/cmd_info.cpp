@@ -217,8 +217,8 @@ int RunInfo(const std::string& session_path, bool as_json, bool verify) {
   return 0;
 }
 
-CommandRegistrar reg({"info", "Validate a session and its rig; list cameras, lights, frames, sizes and pixel types",
-                      20, [](CLI::App* sub) -> std::function<int()> {
+CommandRegistrar reg({"info", "Validate a session and its rig; list cameras, lights, frames, sizes and pixel types", 20,
+                      [](CLI::App* sub) -> std::function<int()> {
                         auto session = std::make_shared<std::string>();
                         auto as_json = std::make_shared<bool>(false);
                         auto verify = std::make_shared<bool>(false);

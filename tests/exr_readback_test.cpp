@@ -77,8 +77,8 @@ TEST_P(ExrReadback, OpenCvReadsSameValuesRgbAndY) {
     // Source: exrheader (OpenEXR's own tool).
     const std::string header = ExrHeader(path);
     const std::string type_text = half ? "16-bit floating-point" : "32-bit floating-point";
-    const std::vector<std::string> names = channels == 3 ? std::vector<std::string>{"R", "G", "B"}
-                                                         : std::vector<std::string>{"Y"};
+    const std::vector<std::string> names =
+        channels == 3 ? std::vector<std::string>{"R", "G", "B"} : std::vector<std::string>{"Y"};
     for (const auto& n : names)
       EXPECT_NE(header.find(n + ", " + type_text), std::string::npos) << n << " missing in\n" << header;
     EXPECT_NE(header.find("zip, multi-scanline blocks"), std::string::npos) << header;
@@ -92,7 +92,7 @@ INSTANTIATE_TEST_SUITE_P(PixelTypes, ExrReadback,
                          ::testing::Values(lumenrig::io::PixelType::kHalf, lumenrig::io::PixelType::kFloat),
                          [](const auto& info) {
                            return info.param == lumenrig::io::PixelType::kHalf ? std::string("half")
-                                                                                : std::string("float");
+                                                                               : std::string("float");
                          });
 
 TEST(ExrReadback, NamedChannelsListedByExrHeaderAndReadByOurReader) {

@@ -13,8 +13,8 @@
 #include "test_support.h"
 
 namespace fs = std::filesystem;
-using nlohmann::json;
 using lumenrig::test::TempDir;
+using nlohmann::json;
 
 namespace {
 
@@ -206,7 +206,8 @@ TEST(SessionBadInput, NanIntensityAsLiteral) {
 TEST(SessionBadInput, PathEscapingTheSessionFolder) {
   TempDir dir;
   MakeSession(dir, [](json* s, json*) { (*s)["cameras"][0]["olat"][0]["path"] = "../cam00/olat_000.exr"; });
-  ExpectBadInput(dir, "session.json", "cameras[0].olat[0].path: path \"../cam00/olat_000.exr\" escapes the session folder");
+  ExpectBadInput(dir, "session.json",
+                 "cameras[0].olat[0].path: path \"../cam00/olat_000.exr\" escapes the session folder");
 }
 
 TEST(SessionBadInput, AbsolutePath) {

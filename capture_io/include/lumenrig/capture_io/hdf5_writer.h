@@ -24,10 +24,10 @@ namespace lumenrig::io {
 enum class H5Type { kFloat16, kFloat32, kFloat64, kUInt8, kInt32, kInt64, kString };
 
 struct H5DatasetSpec {
-  std::string name;                 ///< absolute path, e.g. "/pairs/input"; groups are created
+  std::string name;                    ///< absolute path, e.g. "/pairs/input"; groups are created
   std::vector<uint64_t> sample_shape;  ///< shape of one sample, e.g. {H, W, 3}; {} for scalars
   H5Type type = H5Type::kFloat16;
-  int gzip_level = 4;               ///< 0 disables compression (and shuffle); ignored for kString
+  int gzip_level = 4;  ///< 0 disables compression (and shuffle); ignored for kString
   /// Samples per chunk; 0 = one sample for array samples, 1024 for scalar
   /// samples (sample_shape {}), so per-sample metadata is not one chunk each.
   uint64_t chunk_samples = 0;
