@@ -244,6 +244,21 @@ TEST(SessionBadInput, GarbageExr) {
   ExpectBadInput(dir, "olat_002.exr", "OpenEXR");
 }
 
+TEST(SessionBadInput, TruncatedPngFoundByVerify) {
+  TempDir dir;
+  MakeSession(dir, [](json* s, json*) { (*s)["cameras"][0]["backlit"] = "cam00/backlit.png"; });
+  cv::Mat noise(kH, kW, CV_8UC3);
+  cv::randu(noise, 0, 256);  // incompressible: the cut lands in pixel data
+  const std::string victim = dir / "cam00/backlit.png";
+  ASSERT_TRUE(cv::imwrite(victim, noise));
+  fs::resize_file(victim, fs::file_size(victim) / 2);
+  // The PNG header is intact, so the header probe passes; --verify decodes.
+  const auto r = lumenrig::test::RunCli("info --verify " + dir.path());
+  EXPECT_EQ(r.exit_code, 2) << r.out << r.err;
+  EXPECT_EQ(std::count(r.err.begin(), r.err.end(), '\n'), 1) << r.err;
+  EXPECT_NE(r.err.find("backlit.png: truncated or corrupt PNG data"), std::string::npos) << r.err;
+}
+
 TEST(SessionBadInput, PngOfTheWrongSize) {
   TempDir dir;
   MakeSession(dir);

@@ -56,15 +56,15 @@ class H5Writer {
   /// and the shape/type match; mismatch is an error).
   Status CreateDataset(const H5DatasetSpec& spec);
 
-  /// Appends `count` samples. `data` holds count * prod(sample_shape)
-  /// elements of float (for kFloat16/kFloat32, converted to half here),
-  /// double, uint8, int32 or int64 matching the dataset type.
   /// Writes a whole image (CV_32F, H x W x C) as a fixed dataset [H, W, C]
   /// of kFloat16 or kFloat32, chunked by 64 rows, gzip + shuffle when
   /// gzip_level > 0. Intermediate groups are created; an existing dataset is
   /// an error.
   Status WriteImage(const std::string& name, const cv::Mat& image, H5Type type = H5Type::kFloat16, int gzip_level = 4);
 
+  /// Appends `count` samples. `data` holds count * prod(sample_shape)
+  /// elements of float (for kFloat16/kFloat32, converted to half here),
+  /// double, uint8, int32 or int64 matching the dataset type.
   Status AppendFloat(const std::string& name, const float* data, uint64_t count);
   Status AppendDouble(const std::string& name, const double* data, uint64_t count);
   Status AppendUInt8(const std::string& name, const uint8_t* data, uint64_t count);
