@@ -204,8 +204,8 @@ struct H5Writer::Impl {
     if (!found.ok()) return found.status();
     Dataset& d = **found;
     if (d.spec.type != expect_a && d.spec.type != expect_b) {
-      return Status::Internal(fmt::format("{}: dataset {} holds {}, appended data of another type", path, name,
-                                          TypeName(d.spec.type)));
+      return Status::Internal(
+          fmt::format("{}: dataset {} holds {}, appended data of another type", path, name, TypeName(d.spec.type)));
     }
     if (count == 0) return Status::Ok();
     std::vector<hsize_t> new_dims{d.samples + count};
@@ -265,8 +265,7 @@ struct H5Writer::Impl {
   }
 
   // Writes attribute `key` on `object` (replacing an existing one).
-  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space,
-                        const void* data) {
+  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space, const void* data) {
     auto obj = OpenObject(object);
     if (!obj.ok()) return obj.status();
     if (H5Aexists(obj->get(), key.c_str()) > 0) H5Adelete(obj->get(), key.c_str());
@@ -355,8 +354,8 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
     const H5DatasetSpec& have = (*found)->spec;
     if (have.type != spec.type || have.sample_shape != spec.sample_shape) {
       return Status::BadInput(fmt::format("{}: dataset {} exists as {} [{}], requested {} [{}]", path, spec.name,
-                                          TypeName(have.type), fmt::join(have.sample_shape, ","),
-                                          TypeName(spec.type), fmt::join(spec.sample_shape, ",")));
+                                          TypeName(have.type), fmt::join(have.sample_shape, ","), TypeName(spec.type),
+                                          fmt::join(spec.sample_shape, ",")));
     }
     return Status::Ok();
   }
@@ -387,8 +386,7 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
   Hid lcpl(H5Pcreate(H5P_LINK_CREATE), H5Pclose);
   H5Pset_create_intermediate_group(lcpl.get(), 1);
   Hid type = FileType(spec.type);
-  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(),
-                    H5P_DEFAULT),
+  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(), H5P_DEFAULT),
          H5Dclose);
   if (!id.valid()) return H5Fail(path, "cannot create dataset " + spec.name);
   Impl::Dataset d;
@@ -615,7 +613,8 @@ Status H5Writer::Finalize() {
   }
   std::error_code ec;
   fs::rename(temp_path_, final_path_, ec);
-  if (ec) return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
+  if (ec)
+    return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
   return Status::Ok();
 }
 
