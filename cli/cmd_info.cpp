@@ -183,7 +183,7 @@ void PrintText(const io::Session& s, const std::vector<CameraReport>& cams) {
     fmt::print("    types: {}\n", fmt::join(TypeSummary(r), "; "));
     if (r.camera->intrinsics) {
       const auto& k = *r.camera->intrinsics;
-      fmt::print("    intrinsics: fx {} fy {} cx {} cy {} px\n", k.fx, k.fy, k.cx, k.cy);
+      fmt::print("    intrinsics: fx {:.2f} fy {:.2f} cx {:.2f} cy {:.2f} px\n", k.fx, k.fy, k.cx, k.cy);
     }
     total += r.frames.size();
   }
