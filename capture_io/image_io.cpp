@@ -52,12 +52,6 @@ const char* FormatName(FileFormat format) {
 
 namespace {
 
-/// Applies sRGB decoding and black-level subtraction to a CV_32F band.
-void ApplyDecode(const DecodeOptions& options, cv::Mat* band) {
-  if (options.encoding == Encoding::kSrgb) SrgbToLinearInPlace(band);
-  if (options.black_level != 0.0f) *band -= cv::Scalar::all(options.black_level);
-}
-
 Status FileMissing(const std::string& path) {
   std::error_code ec;
   if (!fs::exists(path, ec)) return Status::BadInput(fmt::format("{}: file not found", path));
@@ -147,6 +141,10 @@ class ExrBandReader : public BandReader {
     } catch (const std::exception& e) {
       return Status::BadInput(fmt::format("{}: not a readable OpenEXR file ({})", path, FirstLine(e.what())));
     }
+    // A file cut short still opens (OpenEXR rebuilds the offset table);
+    // isComplete() says whether every scan line block is present.
+    if (!reader->file_->isComplete())
+      return Status::BadInput(fmt::format("{}: truncated OpenEXR file (not all scan lines are present)", path));
     const Imf::Header& header = reader->file_->header();
     auto map = MapExrChannels(header, path);
     if (!map.ok()) return map.status();
@@ -189,7 +187,7 @@ class ExrBandReader : public BandReader {
       return Status::BadInput(fmt::format("{}: corrupt or truncated OpenEXR data in rows {}..{} ({})", path_, y0,
                                           y1 - 1, FirstLine(e.what())));
     }
-    ApplyDecode(options_, out);
+    ApplyDecodeOptions(options_, out);
     return Status::Ok();
   }
 
@@ -239,7 +237,7 @@ class WholeImageBandReader : public BandReader {
     auto image = ToLinearFloat(raw, path, &pixel_type);
     if (!image.ok()) return image.status();
     reader->image_ = std::move(image).value();
-    ApplyDecode(options, &reader->image_);
+    ApplyDecodeOptions(options, &reader->image_);
     ImageInfo& info = reader->info_;
     info.format = format;
     info.width = reader->image_.cols;
@@ -288,7 +286,15 @@ Expected<std::unique_ptr<BandReader>> BandReader::Open(const std::string& path, 
 Expected<ImageInfo> ProbeImage(const std::string& path) {
   auto reader = BandReader::Open(path, {});
   if (!reader.ok()) return reader.status();
-  return (*reader)->info();
+  const ImageInfo& info = (*reader)->info();
+  if (info.format == FileFormat::kExr) {
+    // A file cut short keeps a valid offset table pointing past its end:
+    // decoding the last line block (written last) finds it at the cost of
+    // one block.
+    cv::Mat last_row;
+    LUMENRIG_RETURN_IF_ERROR((*reader)->ReadRows(info.height - 1, info.height, &last_row));
+  }
+  return info;
 }
 
 Expected<cv::Mat> ReadImage(const std::string& path, const DecodeOptions& options) {
