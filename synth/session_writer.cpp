@@ -71,7 +71,8 @@ io::Status WriteTruth(const SimOptions& o, const CameraView& view, const TruthMa
 io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimSummary* summary) {
   LUMENRIG_RETURN_IF_ERROR(ValidateSimOptions(o));
   std::error_code ec;
-  const fs::path dir = fs::absolute(out_dir, ec).lexically_normal();
+  fs::path dir = fs::absolute(out_dir, ec).lexically_normal();
+  if (dir.filename().empty()) dir = dir.parent_path();  // "out/" -> "out"
   const std::string dir_s = dir.string();
   if (fs::exists(dir, ec)) {
     if (!fs::is_directory(dir, ec)) return io::Status::BadInput(fmt::format("{}: exists and is not a folder", dir_s));

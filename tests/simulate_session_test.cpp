@@ -280,7 +280,8 @@ TEST(SimulateSessionFaults, MotionShowsInTrackingFrames) {
 
 TEST(SimulateCli, WritesSessionAndPrintsWhere) {
   test::TempDir tmp;
-  auto r = test::RunCli("simulate --out " + (tmp / "s") + " --size 48x32 --lights 6 --no-noise --threads 2");
+  // A trailing slash names the same folder.
+  auto r = test::RunCli("simulate --out " + (tmp / "s/") + " --size 48x32 --lights 6 --no-noise --threads 2");
   ASSERT_EQ(r.exit_code, 0) << r.err;
   EXPECT_NE(r.out.find("session: " + fs::absolute(tmp / "s").string() + "/session.json"), std::string::npos) << r.out;
   EXPECT_NE(r.out.find("peak RSS"), std::string::npos);
