@@ -30,12 +30,13 @@ double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::d
 std::string Mib(int64_t bytes) { return fmt::format("{:.0f} MiB", bytes / 1048576.0); }
 
 /// Pixel ray r = ((u + 0.5 - cx)/fx, -(v + 0.5 - cy)/fy, -1): X = depth * r.
-void PointsFromDepth(const cv::Mat& depth, const io::Intrinsics& k, double fallback_depth_m, cv::Mat* points) {
-  points->create(depth.rows, depth.cols, CV_32FC3);
-  for (int v = 0; v < depth.rows; ++v) {
+void PointsFromDepth(const cv::Mat& depth, cv::Size size, const io::Intrinsics& k, double fallback_depth_m,
+                     cv::Mat* points) {
+  points->create(size, CV_32FC3);
+  for (int v = 0; v < size.height; ++v) {
     const float* d = depth.empty() ? nullptr : depth.ptr<float>(v);
     cv::Vec3f* p = points->ptr<cv::Vec3f>(v);
-    for (int u = 0; u < depth.cols; ++u) {
+    for (int u = 0; u < size.width; ++u) {
       const double z = (d && d[u] > 0) ? d[u] : fallback_depth_m;
       p[u] = cv::Vec3f(static_cast<float>(z * (u + 0.5 - k.cx) / k.fx), static_cast<float>(-z * (v + 0.5 - k.cy) / k.fy),
                        static_cast<float>(-z));
@@ -252,7 +253,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   std::vector<io::Status> errors(static_cast<size_t>(n));
 
   cv::Mat points, previous_normals, previous_confidence;
-  if (near) PointsFromDepth(cv::Mat(), *cam.intrinsics, reference_depth_m, &points);
+  if (near) PointsFromDepth(cv::Mat(), cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
   const bool single_band = rows >= height;
   const int iterations = near ? options.near_field_max_iterations : 1;
   out->read_seconds = out->solve_seconds = out->integrate_seconds = 0;
@@ -346,7 +347,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     io_opts.reference_depth_m = reference_depth_m;
     DepthMap depth;
     LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth));
-    PointsFromDepth(depth.depth, *cam.intrinsics, reference_depth_m, &points);
+    PointsFromDepth(depth.depth, cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
     out->normals.copyTo(previous_normals);
     out->confidence.copyTo(previous_confidence);
     out->integrate_seconds += Seconds(t2, Clock::now());
