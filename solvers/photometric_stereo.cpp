@@ -144,9 +144,28 @@ void PsSolver::SolveLeastSquaresDistant(const BlockInput& in, const BlockOutputs
 
   using RowMajorMap = Eigen::Map<const Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>, 0,
                                  Eigen::OuterStride<>>;
-  RowMajorMap stack(in.data, n, cols, Eigen::OuterStride<>(in.light_stride));
   Eigen::Map<Eigen::MatrixXf> g(g_data, 3, cols);
-  g.noalias() = pinv_ * stack;
+  // Eigen's GEMM kernel takes a different summation path for the last
+  // (n mod 4) columns, so the product is formed for a multiple of
+  // kGemmPixels pixels and the tail is padded with zeros to that width:
+  // every column then goes through the same path and a pixel's result does
+  // not depend on where a band or tile boundary falls.
+  constexpr int64_t kGemmPixels = 4;
+  const int64_t main_pixels = k_count / kGemmPixels * kGemmPixels;
+  if (main_pixels > 0) {
+    RowMajorMap stack(in.data, n, main_pixels * c_count, Eigen::OuterStride<>(in.light_stride));
+    g.leftCols(main_pixels * c_count).noalias() = pinv_ * stack;
+  }
+  if (main_pixels < k_count) {
+    const int64_t tail = (k_count - main_pixels) * c_count;
+    Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> pad =
+        Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>::Zero(n, kGemmPixels * c_count);
+    for (int i = 0; i < n; ++i)
+      std::copy(in.data + i * in.light_stride + main_pixels * c_count,
+                in.data + i * in.light_stride + k_count * c_count, pad.row(i).data());
+    const Eigen::MatrixXf g_pad = pinv_ * pad;
+    g.rightCols(tail) = g_pad.leftCols(tail);
+  }
 
   // Per-pixel gray energy, sum and count of lit samples (one pass).
   std::fill(energy, energy + 3 * k_count, 0.0f);
