@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <cmath>
 #include <limits>
+#include <type_traits>
 
 #include <Eigen/Dense>
 #include <fmt/format.h>
@@ -127,97 +128,104 @@ void PsSolver::SolveBlock(const BlockInput& in, const BlockOutputs& out, std::ve
 }
 
 // Least squares for distant lights: G (3 x K*C) = pinv(L) (3 x N) * I (N x K*C),
-// one GEMM for every channel of every pixel of the block; the gray scaled
+// one GEMM for every channel of every pixel of a sub-block; the gray scaled
 // normal is the BT.709 combination of the channel columns (the product is
-// linear). Residual from |y|^2 - g^T (L^T L) g (least-squares identity).
+// linear). Residual per channel from |I_c|^2 - g_c^T (L^T L) g_c (least-squares
+// identity), with the column sums of squares taken while the sub-block is
+// still in cache.
 void PsSolver::SolveLeastSquaresDistant(const BlockInput& in, const BlockOutputs& out,
                                         std::vector<float>* scratch) const {
-  const int n = lights_.count();
-  const int64_t k_count = in.pixels;
-  const int c_count = in.channels;
-  const int64_t cols = k_count * c_count;
-  scratch->resize(static_cast<size_t>(3 * cols + 3 * k_count));
-  float* g_data = scratch->data();
-  float* energy = g_data + 3 * cols;
-  float* sum = energy + k_count;
-  float* lit = sum + k_count;
-
-  using RowMajorMap = Eigen::Map<const Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>, 0,
-                                 Eigen::OuterStride<>>;
-  Eigen::Map<Eigen::MatrixXf> g(g_data, 3, cols);
   // Eigen's GEMM kernel takes a different summation path for the last
-  // (n mod 4) columns, so the product is formed for a multiple of
-  // kGemmPixels pixels and the tail is padded with zeros to that width:
-  // every column then goes through the same path and a pixel's result does
-  // not depend on where a band or tile boundary falls.
+  // (n mod 4) columns, so products are formed for multiples of kGemmPixels
+  // pixels and a tail is padded with zeros to that width: every column goes
+  // through the same path and a pixel's result does not depend on where a
+  // band or tile boundary falls.
   constexpr int64_t kGemmPixels = 4;
-  const int64_t main_pixels = k_count / kGemmPixels * kGemmPixels;
-  if (main_pixels > 0) {
-    RowMajorMap stack(in.data, n, main_pixels * c_count, Eigen::OuterStride<>(in.light_stride));
-    g.leftCols(main_pixels * c_count).noalias() = pinv_ * stack;
-  }
-  if (main_pixels < k_count) {
-    const int64_t tail = (k_count - main_pixels) * c_count;
-    Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> pad =
-        Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>::Zero(n, kGemmPixels * c_count);
-    for (int i = 0; i < n; ++i)
-      std::copy(in.data + i * in.light_stride + main_pixels * c_count,
-                in.data + i * in.light_stride + k_count * c_count, pad.row(i).data());
-    const Eigen::MatrixXf g_pad = pinv_ * pad;
-    g.rightCols(tail) = g_pad.leftCols(tail);
-  }
-
-  // Per-pixel gray energy, sum and count of lit samples (one pass).
-  std::fill(energy, energy + 3 * k_count, 0.0f);
+  constexpr int64_t kSubBlock = 256;  // pixels per GEMM (multiple of kGemmPixels)
+  const int n = lights_.count();
+  const int c_count = in.channels;
+  scratch->resize(static_cast<size_t>(kSubBlock * c_count * 6 + n * kGemmPixels * c_count));
+  float* g_data = scratch->data();
+  float* energy = g_data + 3 * kSubBlock * c_count;
+  float* sum = energy + kSubBlock * c_count;
+  float* lit = sum + kSubBlock * c_count;
+  float* pad_data = lit + kSubBlock * c_count;
   const float floor = static_cast<float>(options_.min_signal);
-  for (int i = 0; i < n; ++i) {
-    const float* row = in.data + i * in.light_stride;
-    if (c_count == 3) {
-      for (int64_t k = 0; k < k_count; ++k) {
-        const float y = Gray3(row + 3 * k);
-        energy[k] += y * y;
-        sum[k] += y;
-        lit[k] += y > floor ? 1.0f : 0.0f;
-      }
-    } else {
-      for (int64_t k = 0; k < k_count; ++k) {
-        const float y = row[k];
-        energy[k] += y * y;
-        sum[k] += y;
-        lit[k] += y > floor ? 1.0f : 0.0f;
-      }
-    }
-  }
+  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  using RowMajorMap = Eigen::Map<const RowMajor, 0, Eigen::OuterStride<>>;
 
-  for (int64_t k = 0; k < k_count; ++k) {
-    if (in.mask && in.mask[k] == 0) {
-      WriteZero(out, k);
-      continue;
+  for (int64_t k0 = 0; k0 < in.pixels; k0 += kSubBlock) {
+    const int64_t k_count = std::min(kSubBlock, in.pixels - k0);
+    const int64_t cols = k_count * c_count;
+    const float* data = in.data + k0 * c_count;
+    Eigen::Map<Eigen::MatrixXf> g(g_data, 3, cols);
+    const int64_t main_pixels = k_count / kGemmPixels * kGemmPixels;
+    if (main_pixels > 0) {
+      RowMajorMap stack(data, n, main_pixels * c_count, Eigen::OuterStride<>(in.light_stride));
+      g.leftCols(main_pixels * c_count).noalias() = pinv_ * stack;
     }
-    Eigen::Vector3f gg;
-    if (c_count == 3) {
-      gg = io::kBt709R * g.col(3 * k) + io::kBt709G * g.col(3 * k + 1) + io::kBt709B * g.col(3 * k + 2);
-    } else {
-      gg = g.col(k);
+    if (main_pixels < k_count) {
+      const int64_t tail = (k_count - main_pixels) * c_count;
+      Eigen::Map<RowMajor> pad(pad_data, n, kGemmPixels * c_count);
+      pad.setZero();
+      for (int i = 0; i < n; ++i)
+        std::copy(data + i * in.light_stride + main_pixels * c_count, data + i * in.light_stride + cols,
+                  pad.row(i).data());
+      const Eigen::MatrixXf g_pad = pinv_ * pad;
+      g.rightCols(tail) = g_pad.leftCols(tail);
     }
-    const float norm = gg.norm();
-    if (!std::isfinite(norm) || !std::isfinite(energy[k]) || !(norm > 0.0f) || !(sum[k] > floor)) {
-      WriteZero(out, k);
-      continue;
-    }
-    const Eigen::Vector3f nrm = gg / norm;
-    for (int c = 0; c < 3; ++c) out.normals[3 * k + c] = nrm[c];
-    if (out.albedo) {
-      for (int c = 0; c < 3; ++c) {
-        const float a = c_count == 3 ? kPi * nrm.dot(g.col(3 * k + c)) : kPi * norm;
-        out.albedo[3 * k + c] = a;
+
+    // Column sums of squares, sums and lit counts (contiguous, vectorised).
+    std::fill(energy, energy + 3 * kSubBlock * c_count, 0.0f);
+    for (int i = 0; i < n; ++i) {
+      const float* row = data + i * in.light_stride;
+      for (int64_t j = 0; j < cols; ++j) {
+        const float x = row[j];
+        energy[j] += x * x;
+        sum[j] += x;
+        lit[j] += x > floor ? 1.0f : 0.0f;
       }
     }
-    if (out.confidence) {
-      const double fitted = static_cast<double>(gg.dot(gram_ * gg));
-      const double residual2 = std::max(0.0, static_cast<double>(energy[k]) - fitted);
-      const double rel = std::sqrt(residual2 * n) / static_cast<double>(sum[k]);
-      out.confidence[k] = PsConfidence(static_cast<int>(lit[k]), condition_, rel);
+
+    for (int64_t kk = 0; kk < k_count; ++kk) {
+      const int64_t k = k0 + kk;
+      if (in.mask && in.mask[k] == 0) {
+        WriteZero(out, k);
+        continue;
+      }
+      Eigen::Vector3f gg;
+      float e_total = 0, s_total = 0, r2_total = 0, lit_max = 0;
+      for (int c = 0; c < c_count; ++c) {
+        const int64_t j = kk * c_count + c;
+        const Eigen::Vector3f gc = g.col(j);
+        e_total += energy[j];
+        s_total += sum[j];
+        lit_max = std::max(lit_max, lit[j]);
+        r2_total += std::max(0.0f, energy[j] - gc.dot(gram_ * gc));
+      }
+      if (c_count == 3) {
+        gg = io::kBt709R * g.col(3 * kk) + io::kBt709G * g.col(3 * kk + 1) + io::kBt709B * g.col(3 * kk + 2);
+      } else {
+        gg = g.col(kk);
+      }
+      const float norm = gg.norm();
+      if (!std::isfinite(norm) || !std::isfinite(e_total) || !(norm > 0.0f) || !(s_total > floor)) {
+        WriteZero(out, k);
+        continue;
+      }
+      const Eigen::Vector3f nrm = gg / norm;
+      for (int c = 0; c < 3; ++c) out.normals[3 * k + c] = nrm[c];
+      if (out.albedo) {
+        for (int c = 0; c < 3; ++c) {
+          const float a = c_count == 3 ? kPi * nrm.dot(g.col(3 * kk + c)) : kPi * norm;
+          out.albedo[3 * k + c] = a;
+        }
+      }
+      if (out.confidence) {
+        // RMS residual over lights and channels relative to the mean intensity.
+        const double rel = std::sqrt(static_cast<double>(c_count) * n * r2_total) / s_total;
+        out.confidence[k] = PsConfidence(static_cast<int>(lit_max), condition_, rel);
+      }
     }
   }
 }
@@ -270,13 +278,19 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
       const float* row = in.data + i * in.light_stride + k0 * c_count;
       float* yi = y + static_cast<size_t>(i) * T;
       float* wi = w + static_cast<size_t>(i) * T;
+      if (c_count == 3) {
+        for (int t = 0; t < tn; ++t) yi[t] = Gray3(row + 3 * t);
+      } else {
+        for (int t = 0; t < tn; ++t) yi[t] = row[t];
+      }
       for (int t = 0; t < tn; ++t) {
-        const float v = c_count == 3 ? Gray3(row + 3 * t) : row[t];
-        const bool ok = std::isfinite(v);
-        yi[t] = ok ? v : 0.0f;
-        wi[t] = ok ? 1.0f : 0.0f;
+        const float v = yi[t];
+        // NaN and +-Inf fail this comparison (branch-free finiteness test).
+        const float ok = static_cast<float>(std::abs(v) <= std::numeric_limits<float>::max());
+        yi[t] = ok > 0.0f ? v : 0.0f;
+        wi[t] = ok;
         ymax[t] = std::max(ymax[t], yi[t]);
-        nvalid[t] += wi[t];
+        nvalid[t] += ok;
       }
     }
     // 2. Light vectors per pixel (near-field): v = (p - x) / |p - x|^3.
@@ -304,14 +318,19 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
       if constexpr (near) return vz[i * T + t]; else return lz[i];
     };
 
-    // 3. Initial weights.
-    float floor_abs[T];
-    for (int t = 0; t < T; ++t) floor_abs[t] = std::max(min_signal, shadow_floor * ymax[t]);
+    // 3. Initial inlier set.
+    float floor_abs[T], lo_a[T], hi_b[T];
+    for (int t = 0; t < T; ++t) {
+      floor_abs[t] = std::max(min_signal, shadow_floor * ymax[t]);
+      lo_a[t] = -1.0f;
+      hi_b[t] = std::numeric_limits<float>::infinity();
+    }
     if (robust) {
       // Order statistics: thresholds at the dark_fraction and
       // (1 - bright_fraction) ranks of the valid samples, found by bisection
-      // on the value (resolution ymax / 2^10) for all pixels at once.
-      float lo_a[T], hi_a[T], lo_b[T], hi_b[T], target_dark[T], target_bright[T];
+      // on the value (resolution ymax / 2^kBisections) for all pixels at once.
+      constexpr int kBisections = 7;
+      float hi_a[T], lo_b[T], target_dark[T], target_bright[T];
       for (int t = 0; t < T; ++t) {
         lo_a[t] = 0.0f;
         hi_a[t] = ymax[t];
@@ -320,7 +339,7 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
         target_dark[t] = std::floor(static_cast<float>(options_.dark_fraction) * nvalid[t]);
         target_bright[t] = std::floor(static_cast<float>(options_.bright_fraction) * nvalid[t]);
       }
-      for (int it = 0; it < 10; ++it) {
+      for (int it = 0; it < kBisections; ++it) {
         float mid_a[T], mid_b[T], below[T], above[T];
         for (int t = 0; t < T; ++t) {
           mid_a[t] = 0.5f * (lo_a[t] + hi_a[t]);
@@ -332,39 +351,65 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
           const float* yi = y + static_cast<size_t>(i) * T;
           const float* wi = w + static_cast<size_t>(i) * T;
           for (int t = 0; t < T; ++t) {
-            below[t] += (yi[t] < mid_a[t]) ? wi[t] : 0.0f;
-            above[t] += (yi[t] > mid_b[t]) ? wi[t] : 0.0f;
+            const float yv = yi[t], wv = wi[t];
+            below[t] += static_cast<float>(yv < mid_a[t]) * wv;
+            above[t] += static_cast<float>(yv > mid_b[t]) * wv;
           }
         }
         for (int t = 0; t < T; ++t) {
           // Dark threshold: the largest value with at most target samples below.
-          if (below[t] <= target_dark[t]) lo_a[t] = mid_a[t]; else hi_a[t] = mid_a[t];
+          const bool dark_ok = below[t] <= target_dark[t];
+          lo_a[t] = dark_ok ? mid_a[t] : lo_a[t];
+          hi_a[t] = dark_ok ? hi_a[t] : mid_a[t];
           // Bright threshold: the smallest value with at most target samples above.
-          if (above[t] <= target_bright[t]) hi_b[t] = mid_b[t]; else lo_b[t] = mid_b[t];
+          const bool bright_ok = above[t] <= target_bright[t];
+          hi_b[t] = bright_ok ? mid_b[t] : hi_b[t];
+          lo_b[t] = bright_ok ? lo_b[t] : mid_b[t];
         }
+      }
+    }
+
+    // 4. Weighted fits. kMode 0: weights as stored (validity); 1: the
+    // order-statistics inlier set; 2: Tukey biweight of the residual under
+    // the current fit with the current scale, samples in attached shadow
+    // (n.v <= 0) or under the shadow floor at 0. Mode 2 also accumulates the
+    // residual of the previous weights for the next scale (one pass).
+    float a[6][T], b[3][T], gx[T], gy[T], gz[T], scale[T], se[T], sw[T], sy[T];
+    bool solved[T];
+    const float c_tukey = static_cast<float>(options_.tukey_c);
+    const float min_rel = static_cast<float>(options_.min_relative_scale);
+    auto fit = [&](auto mode) {
+      constexpr int kMode = decltype(mode)::value;
+      for (int j = 0; j < 6; ++j) std::fill(a[j], a[j] + T, 0.0f);
+      for (int j = 0; j < 3; ++j) std::fill(b[j], b[j] + T, 0.0f);
+      if constexpr (kMode == 2) {
+        for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
       }
       for (int i = 0; i < n; ++i) {
         const float* yi = y + static_cast<size_t>(i) * T;
         float* wi = w + static_cast<size_t>(i) * T;
         for (int t = 0; t < T; ++t) {
-          const bool keep = yi[t] >= lo_a[t] && yi[t] <= hi_b[t] && yi[t] > floor_abs[t];
-          wi[t] = keep ? wi[t] : 0.0f;
-        }
-      }
-    }
-
-    // 4. Weighted fit, then reweighting passes.
-    float a[6][T], b[3][T], gx[T], gy[T], gz[T], scale[T];
-    bool solved[T];
-    auto accumulate_and_solve = [&]() {
-      for (int j = 0; j < 6; ++j) std::fill(a[j], a[j] + T, 0.0f);
-      for (int j = 0; j < 3; ++j) std::fill(b[j], b[j] + T, 0.0f);
-      for (int i = 0; i < n; ++i) {
-        const float* yi = y + static_cast<size_t>(i) * T;
-        const float* wi = w + static_cast<size_t>(i) * T;
-        for (int t = 0; t < T; ++t) {
           const float x = lvx(i, t), yv = lvy(i, t), z = lvz(i, t);
-          const float ww = wi[t];
+          const float yy = yi[t];
+          float ww = wi[t];
+          if constexpr (kMode == 1) {
+            // Bitwise & (no short circuit) keeps the loop branch-free.
+            const float keep = static_cast<float>((yy >= lo_a[t]) & (yy <= hi_b[t]) & (yy > floor_abs[t]));
+            ww *= keep;
+            wi[t] = ww;
+          } else if constexpr (kMode == 2) {
+            const float pred = x * gx[t] + yv * gy[t] + z * gz[t];
+            const float e = yy - pred;
+            se[t] += ww * e * e;
+            sw[t] += ww;
+            sy[t] += ww * yy;
+            const float u = e / (c_tukey * scale[t]);
+            const float tw = 1.0f - u * u;
+            // Non-finite samples were stored as 0, so the floor test drops them.
+            const float usable = static_cast<float>((yy > floor_abs[t]) & (pred > 0.0f) & (u * u < 1.0f));
+            ww = usable * tw * tw;
+            wi[t] = ww;
+          }
           const float wx = ww * x, wy = ww * yv, wz = ww * z;
           a[0][t] += wx * x;
           a[1][t] += wx * yv;
@@ -372,9 +417,9 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
           a[3][t] += wy * yv;
           a[4][t] += wy * z;
           a[5][t] += wz * z;
-          b[0][t] += wx * yi[t];
-          b[1][t] += wy * yi[t];
-          b[2][t] += wz * yi[t];
+          b[0][t] += wx * yy;
+          b[1][t] += wy * yy;
+          b[2][t] += wz * yy;
         }
       }
       for (int t = 0; t < tn; ++t) {
@@ -387,49 +432,35 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
         gz[t] = solved[t] ? static_cast<float>(gd[2]) : 0.0f;
       }
     };
-    accumulate_and_solve();
-
-    if (robust) {
-      const float c_tukey = static_cast<float>(options_.tukey_c);
-      const float min_rel = static_cast<float>(options_.min_relative_scale);
+    auto update_scale = [&]() {
+      for (int t = 0; t < T; ++t) {
+        const float rms = sw[t] > 0 ? std::sqrt(se[t] / sw[t]) : 0.0f;
+        const float mean = sw[t] > 0 ? sy[t] / sw[t] : 0.0f;
+        scale[t] = std::max(rms, min_rel * mean);
+      }
+    };
+    if (!robust) {
+      fit(std::integral_constant<int, 0>());
+    } else {
+      fit(std::integral_constant<int, 1>());
       // Initial scale: weighted RMS residual of the order-statistics fit.
-      float se[T], sw[T], sy[T];
-      auto residual_scale = [&]() {
-        for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
-        for (int i = 0; i < n; ++i) {
-          const float* yi = y + static_cast<size_t>(i) * T;
-          const float* wi = w + static_cast<size_t>(i) * T;
-          for (int t = 0; t < T; ++t) {
-            const float e = yi[t] - (lvx(i, t) * gx[t] + lvy(i, t) * gy[t] + lvz(i, t) * gz[t]);
-            se[t] += wi[t] * e * e;
-            sw[t] += wi[t];
-            sy[t] += wi[t] * yi[t];
-          }
-        }
+      for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
+      for (int i = 0; i < n; ++i) {
+        const float* yi = y + static_cast<size_t>(i) * T;
+        const float* wi = w + static_cast<size_t>(i) * T;
         for (int t = 0; t < T; ++t) {
-          const float rms = sw[t] > 0 ? std::sqrt(se[t] / sw[t]) : 0.0f;
-          const float mean = sw[t] > 0 ? sy[t] / sw[t] : 0.0f;
-          scale[t] = std::max(rms, min_rel * mean);
+          const float e = yi[t] - (lvx(i, t) * gx[t] + lvy(i, t) * gy[t] + lvz(i, t) * gz[t]);
+          se[t] += wi[t] * e * e;
+          sw[t] += wi[t];
+          sy[t] += wi[t] * yi[t];
         }
-      };
-      residual_scale();
+      }
+      update_scale();
       for (int iter = 0; iter < options_.irls_iterations; ++iter) {
-        // Tukey biweight on e / (c * scale); attached shadow (n.v <= floor)
-        // and shadow-floor samples get weight 0.
-        for (int i = 0; i < n; ++i) {
-          const float* yi = y + static_cast<size_t>(i) * T;
-          float* wi = w + static_cast<size_t>(i) * T;
-          for (int t = 0; t < T; ++t) {
-            const float pred = lvx(i, t) * gx[t] + lvy(i, t) * gy[t] + lvz(i, t) * gz[t];
-            const float u = (yi[t] - pred) / (c_tukey * scale[t]);
-            const float tw = (1.0f - u * u);
-            // Non-finite samples were stored as 0, so the floor test drops them.
-            const bool usable = yi[t] > floor_abs[t] && pred > 0.0f && std::abs(u) < 1.0f;
-            wi[t] = usable ? tw * tw : 0.0f;
-          }
-        }
-        accumulate_and_solve();
-        residual_scale();
+        fit(std::integral_constant<int, 2>());
+        // Scale for the next pass: residual of the weights just replaced
+        // under the fit they were computed from (lagged by one pass).
+        update_scale();
       }
     }
 
