@@ -204,8 +204,8 @@ struct H5Writer::Impl {
     if (!found.ok()) return found.status();
     Dataset& d = **found;
     if (d.spec.type != expect_a && d.spec.type != expect_b) {
-      return Status::Internal(fmt::format("{}: dataset {} holds {}, appended data of another type", path, name,
-                                          TypeName(d.spec.type)));
+      return Status::Internal(
+          fmt::format("{}: dataset {} holds {}, appended data of another type", path, name, TypeName(d.spec.type)));
     }
     if (count == 0) return Status::Ok();
     std::vector<hsize_t> new_dims{d.samples + count};
@@ -265,8 +265,7 @@ struct H5Writer::Impl {
   }
 
   // Writes attribute `key` on `object` (replacing an existing one).
-  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space,
-                        const void* data) {
+  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space, const void* data) {
     auto obj = OpenObject(object);
     if (!obj.ok()) return obj.status();
     if (H5Aexists(obj->get(), key.c_str()) > 0) H5Adelete(obj->get(), key.c_str());
@@ -355,8 +354,8 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
     const H5DatasetSpec& have = (*found)->spec;
     if (have.type != spec.type || have.sample_shape != spec.sample_shape) {
       return Status::BadInput(fmt::format("{}: dataset {} exists as {} [{}], requested {} [{}]", path, spec.name,
-                                          TypeName(have.type), fmt::join(have.sample_shape, ","),
-                                          TypeName(spec.type), fmt::join(spec.sample_shape, ",")));
+                                          TypeName(have.type), fmt::join(have.sample_shape, ","), TypeName(spec.type),
+                                          fmt::join(spec.sample_shape, ",")));
     }
     return Status::Ok();
   }
@@ -387,8 +386,7 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
   Hid lcpl(H5Pcreate(H5P_LINK_CREATE), H5Pclose);
   H5Pset_create_intermediate_group(lcpl.get(), 1);
   Hid type = FileType(spec.type);
-  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(),
-                    H5P_DEFAULT),
+  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(), H5P_DEFAULT),
          H5Dclose);
   if (!id.valid()) return H5Fail(path, "cannot create dataset " + spec.name);
   Impl::Dataset d;
@@ -446,9 +444,16 @@ Status H5Writer::AppendFloat(const std::string& name, const float* data, uint64_
     // even; out-of-range values become +-inf) and write with the file type.
     const uint64_t n = count * Product((*found)->spec.sample_shape);
     if (n == 0) return Status::Ok();
-    cv::Mat halves;
-    cv::Mat(1, static_cast<int>(n), CV_32F, const_cast<float*>(data)).convertTo(halves, CV_16F);
-    return impl_->Append(name, -1, halves.data, count, H5Type::kFloat16);
+    // Row of at most 2^30 elements per cv::Mat (int column count).
+    constexpr uint64_t kRow = uint64_t{1} << 30;
+    const uint64_t rows = (n + kRow - 1) / kRow;
+    std::vector<uint16_t> halves(n);
+    for (uint64_t r = 0; r < rows; ++r) {
+      const uint64_t begin = r * kRow, len = std::min(kRow, n - begin);
+      cv::Mat dst(1, static_cast<int>(len), CV_16F, halves.data() + begin);
+      cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(data + begin)).convertTo(dst, CV_16F);
+    }
+    return impl_->Append(name, -1, halves.data(), count, H5Type::kFloat16);
   }
   return impl_->Append(name, H5T_NATIVE_FLOAT, data, count, H5Type::kFloat32, H5Type::kFloat16);
 }
@@ -615,7 +620,8 @@ Status H5Writer::Finalize() {
   }
   std::error_code ec;
   fs::rename(temp_path_, final_path_, ec);
-  if (ec) return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
+  if (ec)
+    return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
   return Status::Ok();
 }
 

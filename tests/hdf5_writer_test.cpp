@@ -40,11 +40,11 @@ void WriteRaw(const std::string& path, const std::vector<float>& v) {
 std::vector<float> TestValues(size_t n, float offset) {
   std::vector<float> v(n);
   for (size_t i = 0; i < n; ++i) v[i] = offset + std::sin(0.37f * static_cast<float>(i)) * 3.0f;
-  v[0] = 1e-6f;      // subnormal in binary16
-  v[1] = 70000.0f;   // above binary16 max (65504): +inf
+  v[0] = 1e-6f;     // subnormal in binary16
+  v[1] = 70000.0f;  // above binary16 max (65504): +inf
   v[2] = -0.0f;
   v[3] = 1.0f / 3.0f;
-  v[4] = 2049.0f;    // halfway between 2048 and 2050: ties to even
+  v[4] = 2049.0f;  // halfway between 2048 and 2050: ties to even
   return v;
 }
 

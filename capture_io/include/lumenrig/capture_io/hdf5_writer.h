@@ -24,10 +24,10 @@ namespace lumenrig::io {
 enum class H5Type { kFloat16, kFloat32, kFloat64, kUInt8, kInt32, kInt64, kString };
 
 struct H5DatasetSpec {
-  std::string name;                 ///< absolute path, e.g. "/pairs/input"; groups are created
+  std::string name;                    ///< absolute path, e.g. "/pairs/input"; groups are created
   std::vector<uint64_t> sample_shape;  ///< shape of one sample, e.g. {H, W, 3}; {} for scalars
   H5Type type = H5Type::kFloat16;
-  int gzip_level = 4;               ///< 0 disables compression (and shuffle); ignored for kString
+  int gzip_level = 4;  ///< 0 disables compression (and shuffle); ignored for kString
   /// Samples per chunk; 0 = one sample for array samples, 1024 for scalar
   /// samples (sample_shape {}), so per-sample metadata is not one chunk each.
   uint64_t chunk_samples = 0;
@@ -56,15 +56,15 @@ class H5Writer {
   /// and the shape/type match; mismatch is an error).
   Status CreateDataset(const H5DatasetSpec& spec);
 
-  /// Appends `count` samples. `data` holds count * prod(sample_shape)
-  /// elements of float (for kFloat16/kFloat32, converted to half here),
-  /// double, uint8, int32 or int64 matching the dataset type.
   /// Writes a whole image (CV_32F, H x W x C) as a fixed dataset [H, W, C]
   /// of kFloat16 or kFloat32, chunked by 64 rows, gzip + shuffle when
   /// gzip_level > 0. Intermediate groups are created; an existing dataset is
   /// an error.
   Status WriteImage(const std::string& name, const cv::Mat& image, H5Type type = H5Type::kFloat16, int gzip_level = 4);
 
+  /// Appends `count` samples. `data` holds count * prod(sample_shape)
+  /// elements of float (for kFloat16/kFloat32, converted to half here),
+  /// double, uint8, int32 or int64 matching the dataset type.
   Status AppendFloat(const std::string& name, const float* data, uint64_t count);
   Status AppendDouble(const std::string& name, const double* data, uint64_t count);
   Status AppendUInt8(const std::string& name, const uint8_t* data, uint64_t count);
