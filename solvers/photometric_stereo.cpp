@@ -326,18 +326,24 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
       hi_b[t] = std::numeric_limits<float>::infinity();
     }
     if (robust) {
-      // Order statistics: thresholds at the dark_fraction and
-      // (1 - bright_fraction) ranks of the valid samples, found by bisection
-      // on the value (resolution ymax / 2^kBisections) for all pixels at once.
+      // Order statistics over the lit samples (above the shadow floor):
+      // thresholds at the dark_fraction and (1 - bright_fraction) ranks,
+      // found by bisection on the value (resolution ymax / 2^kBisections)
+      // for all pixels at once.
       constexpr int kBisections = 7;
-      float hi_a[T], lo_b[T], target_dark[T], target_bright[T];
+      float hi_a[T], lo_b[T], target_dark[T], target_bright[T], nlit[T];
+      std::fill(nlit, nlit + T, 0.0f);
+      for (int i = 0; i < n; ++i) {
+        const float* yi = y + static_cast<size_t>(i) * T;
+        for (int t = 0; t < T; ++t) nlit[t] += static_cast<float>(yi[t] > floor_abs[t]);
+      }
       for (int t = 0; t < T; ++t) {
         lo_a[t] = 0.0f;
         hi_a[t] = ymax[t];
         lo_b[t] = 0.0f;
         hi_b[t] = ymax[t];
-        target_dark[t] = std::floor(static_cast<float>(options_.dark_fraction) * nvalid[t]);
-        target_bright[t] = std::floor(static_cast<float>(options_.bright_fraction) * nvalid[t]);
+        target_dark[t] = std::floor(static_cast<float>(options_.dark_fraction) * nlit[t]);
+        target_bright[t] = std::floor(static_cast<float>(options_.bright_fraction) * nlit[t]);
       }
       for (int it = 0; it < kBisections; ++it) {
         float mid_a[T], mid_b[T], below[T], above[T];
@@ -349,11 +355,11 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
         }
         for (int i = 0; i < n; ++i) {
           const float* yi = y + static_cast<size_t>(i) * T;
-          const float* wi = w + static_cast<size_t>(i) * T;
           for (int t = 0; t < T; ++t) {
-            const float yv = yi[t], wv = wi[t];
-            below[t] += static_cast<float>(yv < mid_a[t]) * wv;
-            above[t] += static_cast<float>(yv > mid_b[t]) * wv;
+            const float yv = yi[t];
+            const float lit = static_cast<float>(yv > floor_abs[t]);
+            below[t] += static_cast<float>(yv < mid_a[t]) * lit;
+            above[t] += static_cast<float>(yv > mid_b[t]) * lit;
           }
         }
         for (int t = 0; t < T; ++t) {
