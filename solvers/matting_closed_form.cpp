@@ -183,21 +183,34 @@ void LocalForeground(const cv::Mat& image, const cv::Mat& trimap, const BandInde
                      std::vector<Eigen::Vector3d>* colour, std::vector<double>* weight) {
   const int block = std::max(1, static_cast<int>(blur_px / 2.0));
   const int gh = (image.rows + block - 1) / block, gw = (image.cols + block - 1) / block;
+  const double sigma = blur_px / block;
+  // Only blocks within 3 sigma of a band pixel are summed, so the cost
+  // follows the band, not the image.
+  cv::Mat needed = cv::Mat::zeros(gh, gw, CV_8UC1);
+  for (const int64_t p : index.pixels) {
+    needed.at<uint8_t>(static_cast<int>(p / index.cols / block), static_cast<int>(p % index.cols / block)) = 255;
+  }
+  const int reach = static_cast<int>(std::ceil(3.0 * sigma)) + 1;
+  cv::dilate(needed, needed, cv::getStructuringElement(cv::MORPH_RECT, cv::Size(2 * reach + 1, 2 * reach + 1)));
   cv::Mat sum = cv::Mat::zeros(gh, gw, CV_32FC3);
   cv::Mat count = cv::Mat::zeros(gh, gw, CV_32FC1);
-  for (int y = 0; y < image.rows; ++y) {
-    const uint8_t* t = trimap.ptr<uint8_t>(y);
-    const float* p = image.ptr<float>(y);
-    float* s = sum.ptr<float>(y / block);
-    float* c = count.ptr<float>(y / block);
-    for (int x = 0; x < image.cols; ++x) {
-      if (t[x] != kTrimapForeground) continue;
-      const int gx = x / block;
-      for (int ch = 0; ch < 3; ++ch) s[3 * gx + ch] += p[3 * x + ch];
-      c[gx] += 1.0f;
+  for (int by = 0; by < gh; ++by) {
+    const uint8_t* nr = needed.ptr<uint8_t>(by);
+    float* s = sum.ptr<float>(by);
+    float* c = count.ptr<float>(by);
+    for (int bx = 0; bx < gw; ++bx) {
+      if (!nr[bx]) continue;
+      for (int y = by * block; y < std::min(image.rows, (by + 1) * block); ++y) {
+        const uint8_t* t = trimap.ptr<uint8_t>(y);
+        const float* p = image.ptr<float>(y);
+        for (int x = bx * block; x < std::min(image.cols, (bx + 1) * block); ++x) {
+          if (t[x] != kTrimapForeground) continue;
+          for (int ch = 0; ch < 3; ++ch) s[3 * bx + ch] += p[3 * x + ch];
+          c[bx] += 1.0f;
+        }
+      }
     }
   }
-  const double sigma = blur_px / block;
   cv::GaussianBlur(sum, sum, cv::Size(), sigma, sigma, cv::BORDER_CONSTANT);
   cv::GaussianBlur(count, count, cv::Size(), sigma, sigma, cv::BORDER_CONSTANT);
   const size_t n = index.pixels.size();
@@ -264,12 +277,9 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
   const int64_t n = static_cast<int64_t>(index.pixels.size());
   const int w = image.cols;
 
-  alpha->create(image.size(), CV_32FC1);
-  for (int y = 0; y < image.rows; ++y) {
-    const uint8_t* t = trimap.ptr<uint8_t>(y);
-    float* a = alpha->ptr<float>(y);
-    for (int x = 0; x < w; ++x) a[x] = t[x] == kTrimapForeground ? 1.0f : 0.0f;
-  }
+  // Known pixels: trimap 255 -> 1, else 0 (band pixels are overwritten below).
+  trimap.convertTo(*alpha, CV_32F, 1.0 / 255.0);
+  cv::threshold(*alpha, *alpha, 254.5 / 255.0, 1.0, cv::THRESH_BINARY);
   ClosedFormStats local;
   local.unknown_pixels = n;
   if (n == 0) {
