@@ -260,7 +260,7 @@ io::Status MattingLaplacianBand(const cv::Mat& image, const cv::Mat& trimap, dou
 io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv::Mat& trimap,
                             const ClosedFormOptions& options, cv::Mat* alpha, ClosedFormStats* stats, int threads) {
   if (!(options.epsilon > 0) || !(options.colour_level >= 0) || !(options.background_prior_weight >= 0) ||
-      !(options.difference_sigma >= 0) || !(options.foreground_blur_px > 0) || !(options.cg_tolerance > 0) ||
+      !(options.difference_sigma >= 0) || !(options.snap_sigmas >= 0) || !(options.foreground_blur_px > 0) || !(options.cg_tolerance > 0) ||
       options.max_iterations < 1) {
     return io::Status::BadInput(
         "closed-form matting options: epsilon, blur, tolerance, iterations must be positive; weights >= 0");
@@ -295,6 +295,8 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
   // Known-background prior: a_hat = projection of I - B on F^ - B.
   Eigen::VectorXd guess = Eigen::VectorXd::Constant(n, 0.5);
   Eigen::VectorXd prior_weight = Eigen::VectorXd::Zero(n);
+  // Alpha standard deviation sigma / |F^ - B| per band pixel (0 = unknown).
+  std::vector<double> sigma_alpha(static_cast<size_t>(n), 0.0);
   if (!plate.empty() && options.background_prior_weight > 0) {
     std::vector<Eigen::Vector3d> fg_colour;
     std::vector<double> fg_weight;
@@ -320,6 +322,7 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
       const double separation = sep / (sep + noise2 / (level * level) + 1e-12);
       guess[i] = a_hat;
       prior_weight[i] = options.background_prior_weight * separation * fg_weight[i];
+      sigma_alpha[i] = options.difference_sigma / fb.norm();
     }
   }
   for (int64_t i = 0; i < n; ++i) {
@@ -357,7 +360,12 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
   }
   for (int64_t i = 0; i < n; ++i) {
     const int y = static_cast<int>(index.pixels[i] / w), x = static_cast<int>(index.pixels[i] % w);
-    alpha->ptr<float>(y)[x] = static_cast<float>(std::clamp(solution[i], 0.0, 1.0));
+    double a = solution[i];
+    // Noise-aware snapping, as for the ratio methods.
+    const double snap = options.snap_sigmas * sigma_alpha[i];
+    if (a < snap) a = 0.0;
+    if (a > 1.0 - snap) a = 1.0;
+    alpha->ptr<float>(y)[x] = static_cast<float>(std::clamp(a, 0.0, 1.0));
   }
   if (stats != nullptr) *stats = local;
   return io::Status::Ok();

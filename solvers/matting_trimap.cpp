@@ -64,6 +64,29 @@ void RemoveSpecks(cv::Mat* mask) {
   }
 }
 
+// Background regions not connected to the image border become subject.
+void FillHoles(cv::Mat* mask) {
+  cv::Mat background = *mask == 0;
+  cv::Mat labels, stats, centroids;
+  const int n = cv::connectedComponentsWithStats(background, labels, stats, centroids, 4, CV_32S);
+  std::vector<uint8_t> hole(static_cast<size_t>(n), 0);
+  bool any = false;
+  for (int i = 1; i < n; ++i) {
+    const int x = stats.at<int>(i, cv::CC_STAT_LEFT), y = stats.at<int>(i, cv::CC_STAT_TOP);
+    const int w = stats.at<int>(i, cv::CC_STAT_WIDTH), h = stats.at<int>(i, cv::CC_STAT_HEIGHT);
+    if (x > 0 && y > 0 && x + w < mask->cols && y + h < mask->rows) {
+      hole[i] = 255;
+      any = true;
+    }
+  }
+  if (!any) return;
+  for (int y = 0; y < mask->rows; ++y) {
+    const int* l = labels.ptr<int>(y);
+    uint8_t* m = mask->ptr<uint8_t>(y);
+    for (int x = 0; x < mask->cols; ++x) m[x] |= hole[l[x]];
+  }
+}
+
 cv::Mat Disk(int radius) {
   return cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(2 * radius + 1, 2 * radius + 1));
 }
@@ -74,17 +97,22 @@ io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const Tr
                             cv::Mat* trimap, TrimapStats* stats) {
   Difference d;
   LUMENRIG_RETURN_IF_ERROR(ComputeDifference(plate, frame, options, &d));
-  const cv::Mat square3 = cv::getStructuringElement(cv::MORPH_RECT, cv::Size(3, 3));
-  cv::Mat fg = d.norm > d.stats.fg_threshold;
+  // Subject evidence: |frame - plate| above the background threshold, minus
+  // noise specks (components under kMinSpeckPixels), with enclosed holes
+  // filled (interior parts whose colour matches the plate are still subject).
   cv::Mat not_bg = d.norm > d.stats.bg_threshold;
-  // Remove isolated noise pixels, then open the band around the silhouette.
-  // Foreground evidence: a 3x3 opening removes noise pixels and thin strands
-  // (those belong to the band). Not-background evidence keeps thin strands:
-  // only connected components smaller than kMinSpeckPixels are noise.
-  cv::morphologyEx(fg, fg, cv::MORPH_OPEN, square3);
   RemoveSpecks(&not_bg);
+  FillHoles(&not_bg);
+  // Band: foreground = subject eroded by band_px/2 (a 3x3 opening when 0, so
+  // thin strands stay unknown); background = outside the subject dilated by
+  // the rest of the band.
   const int inner = options.band_px / 2, outer = options.band_px - options.band_px / 2;
-  if (inner > 0) cv::erode(fg, fg, Disk(inner));
+  cv::Mat fg;
+  if (inner > 0) {
+    cv::erode(not_bg, fg, Disk(inner));
+  } else {
+    cv::morphologyEx(not_bg, fg, cv::MORPH_OPEN, cv::getStructuringElement(cv::MORPH_RECT, cv::Size(3, 3)));
+  }
   if (outer > 0) cv::dilate(not_bg, not_bg, Disk(outer));
   trimap->create(plate.size(), CV_8UC1);
   trimap->setTo(kTrimapUnknown);

@@ -111,16 +111,16 @@ io::Status TriangulationMatte(const std::vector<cv::Mat>& plates, const std::vec
 struct TrimapOptions {
   /// Per-channel noise sigma of the difference frame - plate; 0 = estimate.
   double difference_sigma = 0.0;
-  /// |frame - plate| (RGB norm) below max(bg_sigmas * sigma, bg_floor * level)
-  /// is background evidence; above max(fg_sigmas * sigma, fg_floor * level)
-  /// foreground evidence; `level` is the plate's median RGB norm.
+  /// |frame - plate| (RGB norm) above t_bg = max(bg_sigmas * sigma,
+  /// bg_floor * level) is subject evidence; `level` is the plate's median RGB
+  /// norm. t_fg = max(fg_sigmas * sigma, fg_floor * level, 2 t_bg) is the
+  /// full-alpha end of PlainDifferenceMatte's ramp.
   double bg_sigmas = 5.0;
   double fg_sigmas = 12.0;
   double bg_floor = 0.01;
   double fg_floor = 0.12;
-  /// Width in pixels of the unknown band around the silhouette: the
-  /// foreground evidence is eroded by band_px/2 and the background evidence
-  /// eroded by band_px - band_px/2 (OpenCV erode/dilate, elliptic kernels).
+  /// Width in pixels of the unknown band around the silhouette (OpenCV
+  /// erode/dilate with elliptic kernels; see DifferenceTrimap).
   int band_px = 8;
 };
 
@@ -132,10 +132,12 @@ struct TrimapStats {
 };
 
 /// Automatic trimap from a clean plate and a frame of the subject in front
-/// of it (same illumination of the backdrop). Foreground evidence is opened
-/// (3x3) so thin strands fall into the band; background-breaking components
-/// smaller than 6 pixels are treated as noise.
-/// removed with a 3x3 opening before erosion.
+/// of it (same illumination of the backdrop). Subject = |frame - plate| >
+/// t_bg without specks (< 6 px components), holes not connected to the image
+/// border filled; foreground = subject eroded by band_px/2, background =
+/// outside the subject dilated by band_px - band_px/2, unknown between.
+/// Semi-transparent regions wider than band_px/2 inside the silhouette need
+/// a wider band or a user trimap.
 io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const TrimapOptions& options,
                             cv::Mat* trimap, TrimapStats* stats = nullptr);
 
@@ -165,6 +167,9 @@ struct ClosedFormOptions {
   /// Per-channel noise sigma of the frame - plate difference (for the prior
   /// weight); 0 = none.
   double difference_sigma = 0.0;
+  /// Band alpha within snap_sigmas * difference_sigma / |F^ - B| of 0 or 1
+  /// snaps (needs the plate and difference_sigma > 0).
+  double snap_sigmas = 2.0;
   double foreground_blur_px = 6.0;  ///< scale of the local foreground colour F^ (pixels)
   double cg_tolerance = 1e-6;       ///< relative residual of the conjugate-gradient solve
   int max_iterations = 2000;
