@@ -38,10 +38,13 @@ void FillInvalid(const cv::Mat& valid, double sigma_px, cv::Mat* alpha) {
 }
 
 // Confidence from the alpha standard deviation and a chi-square-like residual
-// ratio (residual^2 / expected residual^2; 1 = consistent with the noise).
+// ratio (residual^2 / expected residual^2, mean 1 under the noise). The fit
+// term stays 1 up to 3, the 95% point of chi^2_2 / 2 (a residual that noise
+// explains), and decays beyond.
+constexpr double kResidualRatio95 = 3.0;
 float ConfidenceFrom(double sigma_alpha, double residual_ratio, double alpha_tolerance) {
   const double precision = 1.0 / (1.0 + (sigma_alpha / alpha_tolerance) * (sigma_alpha / alpha_tolerance));
-  const double fit = std::exp(-0.5 * std::max(0.0, residual_ratio - 1.0));
+  const double fit = std::exp(-0.5 * std::max(0.0, residual_ratio - kResidualRatio95));
   return static_cast<float>(precision * fit);
 }
 
