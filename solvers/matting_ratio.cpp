@@ -358,8 +358,7 @@ cv::Mat CompositeOver(const cv::Mat& foreground, const cv::Mat& alpha, const cv:
   CV_Assert(foreground.size() == alpha.size() && background.size() == alpha.size());
   cv::Mat a3;
   cv::merge(std::vector<cv::Mat>{alpha, alpha, alpha}, a3);
-  cv::Mat one = cv::Mat::ones(alpha.size(), CV_32FC3);
-  return foreground.mul(a3) + background.mul(one - a3);
+  return foreground.mul(a3) + background.mul(cv::Scalar::all(1.0) - a3);
 }
 
 MatteError CompareMattes(const cv::Mat& alpha, const cv::Mat& truth) {

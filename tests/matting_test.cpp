@@ -234,6 +234,19 @@ TEST(DifferenceMatting, ForegroundColourRecoveredInTheBand) {
   EXPECT_LT(max_err, 0.01);  // lambda = 1e-3 bias at alpha >= 0.3: < 1e-3 / 0.09 * |F - F^|
 }
 
+TEST(DifferenceMatting, CompositeOverIsTheCompositingEquation) {
+  // Porter and Duff 1984: a F + (1 - a) B in every channel.
+  const Scene s = MakeScene(48);
+  const cv::Mat c = CompositeOver(s.foreground, s.alpha, s.plate2);
+  for (int y = 0; y < 48; y += 5) {
+    for (int x = 0; x < 48; x += 3) {
+      const float a = s.alpha.at<float>(y, x);
+      const cv::Vec3f expected = a * s.foreground.at<cv::Vec3f>(y, x) + (1 - a) * s.plate2.at<cv::Vec3f>(y, x);
+      EXPECT_LT(cv::norm(c.at<cv::Vec3f>(y, x) - expected, cv::NORM_INF), 1e-6) << y << "," << x;
+    }
+  }
+}
+
 TEST(DifferenceMatting, UserTrimapOverridesAndWrongSizeIsRejected) {
   cv::Mat image(20, 30, CV_32FC1, cv::Scalar(0.5));
   image(cv::Rect(0, 0, 5, 20)).setTo(0.0);
