@@ -44,9 +44,9 @@ Frame MakeFrame(int width, int height, double radius, int band_px) {
       const cv::Vec3f fg(0.55f + 0.1f * std::sin(0.11f * y), 0.42f, 0.33f + 0.05f * std::cos(0.13f * x));
       pl[x] = b;
       im[x] = static_cast<float>(a) * fg + static_cast<float>(1 - a) * b;
-      t[x] = std::fabs(r - radius) <= 0.5 * band_px ? lumenrig::solvers::kTrimapUnknown
-                                                     : (r < radius ? lumenrig::solvers::kTrimapForeground
-                                                                   : lumenrig::solvers::kTrimapBackground);
+      t[x] = std::fabs(r - radius) <= 0.5 * band_px
+                 ? lumenrig::solvers::kTrimapUnknown
+                 : (r < radius ? lumenrig::solvers::kTrimapForeground : lumenrig::solvers::kTrimapBackground);
     }
   }
   return f;
@@ -63,8 +63,8 @@ void Run(benchmark::State& state, const Frame& frame) {
   ClosedFormStats stats;
   cv::Mat alpha;
   for (auto _ : state) {
-    const auto st = lumenrig::solvers::RefineClosedForm(frame.image, frame.plate, frame.trimap, options, &alpha,
-                                                        &stats, 1);
+    const auto st =
+        lumenrig::solvers::RefineClosedForm(frame.image, frame.plate, frame.trimap, options, &alpha, &stats, 1);
     if (!st.ok()) state.SkipWithError(st.message().c_str());
     benchmark::DoNotOptimize(alpha.data);
   }

@@ -93,8 +93,9 @@ std::function<int()> Setup(CLI::App* sub) {
   return [args]() { return Run(*args); };
 }
 
-CommandRegistrar registrar({"matte", "Alpha matte and foreground colour from clean plates (backlit ratio, "
-                                     "Smith-Blinn triangulation, difference + closed-form refinement)",
+CommandRegistrar registrar({"matte",
+                            "Alpha matte and foreground colour from clean plates (backlit ratio, "
+                            "Smith-Blinn triangulation, difference + closed-form refinement)",
                             40, Setup});
 
 }  // namespace

@@ -103,8 +103,8 @@ const char* MatteMethodName(MatteMethod method) {
 }
 
 io::Status ParseMatteMethod(const std::string& text, MatteMethod* method) {
-  for (MatteMethod m : {MatteMethod::kAuto, MatteMethod::kBacklit, MatteMethod::kTriangulation,
-                        MatteMethod::kDifference}) {
+  for (MatteMethod m :
+       {MatteMethod::kAuto, MatteMethod::kBacklit, MatteMethod::kTriangulation, MatteMethod::kDifference}) {
     if (text == MatteMethodName(m)) {
       *method = m;
       return io::Status::Ok();
@@ -140,16 +140,11 @@ io::Status MatteOptionsFromJson(const nlohmann::json& j, const std::string& sour
 }
 
 nlohmann::json MatteOptionsToJson(const MatteOptions& o) {
-  return {{"method", MatteMethodName(o.method)},
-          {"trimap", o.trimap_path},
-          {"band_px", o.trimap.band_px},
-          {"noise_sigma", o.noise_sigma},
-          {"epsilon", o.closed_form.epsilon},
-          {"background_prior_weight", o.closed_form.background_prior_weight},
-          {"snap_sigmas", o.backlit.snap_sigmas},
-          {"correct_spill", o.backlit.correct_spill},
-          {"bg_sigmas", o.trimap.bg_sigmas},
-          {"fg_sigmas", o.trimap.fg_sigmas}};
+  return {{"method", MatteMethodName(o.method)},  {"trimap", o.trimap_path},
+          {"band_px", o.trimap.band_px},          {"noise_sigma", o.noise_sigma},
+          {"epsilon", o.closed_form.epsilon},     {"background_prior_weight", o.closed_form.background_prior_weight},
+          {"snap_sigmas", o.backlit.snap_sigmas}, {"correct_spill", o.backlit.correct_spill},
+          {"bg_sigmas", o.trimap.bg_sigmas},      {"fg_sigmas", o.trimap.fg_sigmas}};
 }
 
 io::Status ComputeMatte(const io::Session& session, const std::string& camera_id, const MatteOptions& options,
@@ -176,9 +171,9 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
     } else if (!cam.clean_plate.empty() && !cam.lit.empty()) {
       method = MatteMethod::kDifference;
     } else {
-      return io::Status::BadInput(fmt::format(
-          "{}: {}: no matting inputs (need 2+ matte_pairs, clean_plate + backlit, or clean_plate + lit)",
-          session.path, fmt::format("cameras[{}]", index)));
+      return io::Status::BadInput(
+          fmt::format("{}: {}: no matting inputs (need 2+ matte_pairs, clean_plate + backlit, or clean_plate + lit)",
+                      session.path, fmt::format("cameras[{}]", index)));
     }
   }
   MatteResult result;
@@ -248,8 +243,8 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
           BacklitMatte(plate, backlit, cv::Mat(), bo, &result.alpha, &result.confidence, &stats, threads));
       result.noise_sigma = stats.noise_sigma;
       if (stats.plate_zero_pixels > 0) {
-        result.notes.push_back(fmt::format("{} pixels where the clean plate is ~0 (confidence 0, alpha filled)",
-                                           stats.plate_zero_pixels));
+        result.notes.push_back(
+            fmt::format("{} pixels where the clean plate is ~0 (confidence 0, alpha filled)", stats.plate_zero_pixels));
       }
       if (!user_trimap.empty()) ApplyTrimap(user_trimap, &result.alpha);
       if (!lit.empty()) {

@@ -7,11 +7,11 @@
 #include <cmath>
 #include <vector>
 
+#include <fmt/format.h>
 #include <Eigen/Dense>
 #include <Eigen/IterativeLinearSolvers>
 #include <Eigen/SparseCore>
 #include <opencv2/imgproc.hpp>
-#include <fmt/format.h>
 
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -50,8 +50,8 @@ bool IsKnown(uint8_t label) { return label == kTrimapBackground || label == kTri
 // Unknown pixels in raster order with per-row offsets, so a neighbour's
 // unknown index is a binary search in its row (memory O(unknown + rows)).
 struct BandIndex {
-  std::vector<int64_t> pixels;      // y * cols + x
-  std::vector<int64_t> row_start;   // rows + 1 offsets into pixels
+  std::vector<int64_t> pixels;     // y * cols + x
+  std::vector<int64_t> row_start;  // rows + 1 offsets into pixels
   int cols = 0;
 
   int64_t Find(int y, int x) const {
@@ -260,8 +260,8 @@ io::Status MattingLaplacianBand(const cv::Mat& image, const cv::Mat& trimap, dou
 io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv::Mat& trimap,
                             const ClosedFormOptions& options, cv::Mat* alpha, ClosedFormStats* stats, int threads) {
   if (!(options.epsilon > 0) || !(options.colour_level >= 0) || !(options.background_prior_weight >= 0) ||
-      !(options.difference_sigma >= 0) || !(options.snap_sigmas >= 0) || !(options.foreground_blur_px > 0) || !(options.cg_tolerance > 0) ||
-      options.max_iterations < 1) {
+      !(options.difference_sigma >= 0) || !(options.snap_sigmas >= 0) || !(options.foreground_blur_px > 0) ||
+      !(options.cg_tolerance > 0) || options.max_iterations < 1) {
     return io::Status::BadInput(
         "closed-form matting options: epsilon, blur, tolerance, iterations must be positive; weights >= 0");
   }

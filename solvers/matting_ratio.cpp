@@ -59,8 +59,8 @@ io::Status CheckRgb(const cv::Mat& m, const char* what, cv::Size size) {
   if (m.empty()) return io::Status::BadInput(fmt::format("{}: image is empty", what));
   if (m.type() != CV_32FC3) return io::Status::BadInput(fmt::format("{}: expected a CV_32FC3 RGB image", what));
   if (m.size() != size) {
-    return io::Status::BadInput(fmt::format("{}: size {}x{} differs from {}x{}", what, m.cols, m.rows, size.width,
-                                            size.height));
+    return io::Status::BadInput(
+        fmt::format("{}: size {}x{} differs from {}x{}", what, m.cols, m.rows, size.width, size.height));
   }
   return io::Status::Ok();
 }
@@ -213,8 +213,8 @@ io::Status TriangulationMatte(const std::vector<cv::Mat>& plates, const std::vec
   }
   if (plates.size() != frames.size() || plates.size() < 2) {
     return io::Status::BadInput(
-        fmt::format("triangulation needs at least 2 (plate, frame) pairs, got {} plates and {} frames",
-                    plates.size(), frames.size()));
+        fmt::format("triangulation needs at least 2 (plate, frame) pairs, got {} plates and {} frames", plates.size(),
+                    frames.size()));
   }
   const cv::Size size = plates[0].size();
   for (size_t i = 0; i < plates.size(); ++i) {

@@ -93,8 +93,8 @@ cv::Mat Disk(int radius) {
 
 }  // namespace
 
-io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const TrimapOptions& options,
-                            cv::Mat* trimap, TrimapStats* stats) {
+io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const TrimapOptions& options, cv::Mat* trimap,
+                            TrimapStats* stats) {
   Difference d;
   LUMENRIG_RETURN_IF_ERROR(ComputeDifference(plate, frame, options, &d));
   // Subject evidence: |frame - plate| above the background threshold, minus

@@ -132,8 +132,8 @@ TEST(MatteCli, MismatchedSizesAndWrongTrimapAreBadInput) {
   const std::string out = dir / "out";
   // User trimap of the wrong size.
   cv::imwrite(dir / "trimap.png", cv::Mat(kSize, kSize + 4, CV_8UC1, cv::Scalar(128)));
-  CommandResult r = RunCli("matte " + dir.path() + " --out " + out + " --method difference --trimap " +
-                           (dir / "trimap.png"));
+  CommandResult r =
+      RunCli("matte " + dir.path() + " --out " + out + " --method difference --trimap " + (dir / "trimap.png"));
   EXPECT_EQ(r.exit_code, 2);
   EXPECT_NE(r.err.find("trimap.png: trimap is 100x96 but the frame is 96x96"), std::string::npos) << r.err;
   EXPECT_FALSE(fs::exists(out));
@@ -156,8 +156,8 @@ TEST(MatteCli, UserTrimapOverridesTheAutomaticOne) {
   trimap.setTo(255, s.alpha >= 1.0f);
   cv::imwrite(dir / "trimap.png", trimap);
   const std::string out = dir / "out";
-  const CommandResult r = RunCli("matte " + dir.path() + " --out " + out + " --method difference --trimap " +
-                                 (dir / "trimap.png"));
+  const CommandResult r =
+      RunCli("matte " + dir.path() + " --out " + out + " --method difference --trimap " + (dir / "trimap.png"));
   ASSERT_EQ(r.exit_code, 0) << r.err;
   const cv::Mat written = cv::imread(out + "/trimap.png", cv::IMREAD_UNCHANGED);
   EXPECT_EQ(cv::norm(written, trimap, cv::NORM_INF), 0.0);

@@ -177,10 +177,11 @@ ImageResult RunImage(const Pair& pair) {
   EXPECT_LT(r.backlit.sad / n, t.backlit_noisy_mad) << pair.name;
   EXPECT_LT(r.refined.mse, t.refined_vs_plain_mse * r.plain.mse) << pair.name;
   EXPECT_LT(r.refined.sad, t.refined_vs_plain_sad * r.plain.sad) << pair.name;
-  std::printf("%-12s %7d px | SAD/MSE tri-exact %8.2f %.2e | tri %8.1f %.2e | backlit %8.1f %.2e | "
-              "plain diff %8.1f %.2e | refined %8.1f %.2e\n",
-              r.name.c_str(), r.pixels, r.tri_exact.sad, r.tri_exact.mse, r.tri_noisy.sad, r.tri_noisy.mse,
-              r.backlit.sad, r.backlit.mse, r.plain.sad, r.plain.mse, r.refined.sad, r.refined.mse);
+  std::printf(
+      "%-12s %7d px | SAD/MSE tri-exact %8.2f %.2e | tri %8.1f %.2e | backlit %8.1f %.2e | "
+      "plain diff %8.1f %.2e | refined %8.1f %.2e\n",
+      r.name.c_str(), r.pixels, r.tri_exact.sad, r.tri_exact.mse, r.tri_noisy.sad, r.tri_noisy.mse, r.backlit.sad,
+      r.backlit.mse, r.plain.sad, r.plain.mse, r.refined.sad, r.refined.mse);
   return r;
 }
 

@@ -5,8 +5,8 @@
 #include <cstdio>
 #include <random>
 
-#include <Eigen/Dense>
 #include <gtest/gtest.h>
+#include <Eigen/Dense>
 #include <opencv2/imgproc.hpp>
 
 #include "lumenrig/solvers/matting.h"
@@ -68,7 +68,8 @@ TEST(TriangulationMatte, ThreePairsAndNoiseStayAccurateAndThreadInvariant) {
   const Scene s = MakeScene(128);
   const cv::Mat plate3 = Texture(128, {0.2, 0.25, 0.5}, {0.1, 0.1, 0.2}, 0.05, 0.21, 0.7);
   const double sigma = 0.005;
-  std::vector<cv::Mat> plates = {AddNoise(s.plate1, sigma, 1), AddNoise(s.plate2, sigma, 2), AddNoise(plate3, sigma, 3)};
+  std::vector<cv::Mat> plates = {AddNoise(s.plate1, sigma, 1), AddNoise(s.plate2, sigma, 2),
+                                 AddNoise(plate3, sigma, 3)};
   std::vector<cv::Mat> frames = {AddNoise(Composite(s, s.plate1), sigma, 4), AddNoise(Composite(s, s.plate2), sigma, 5),
                                  AddNoise(Composite(s, plate3), sigma, 6)};
   TriangulationOptions options;
@@ -126,8 +127,8 @@ TEST(BacklitMatte, ExactWithoutNoiseAndDarkFrameSubtracted) {
   options.noise_sigma = 1e-7;
   cv::Mat alpha, conf;
   BacklitStats stats;
-  ASSERT_TRUE(BacklitMatte(s.plate1 + dark, Backlit(s, s.plate1, spill) + dark, dark, options, &alpha, &conf, &stats)
-                  .ok());
+  ASSERT_TRUE(
+      BacklitMatte(s.plate1 + dark, Backlit(s, s.plate1, spill) + dark, dark, options, &alpha, &conf, &stats).ok());
   EXPECT_LT(Mse(alpha, s.alpha), 1e-8);  // float rounding: common practice
   EXPECT_EQ(stats.plate_zero_pixels, 0);
 }
@@ -199,7 +200,8 @@ TEST(DifferenceMatting, RefinementBeatsPlainDifferenceMatte) {
       if ((t == kTrimapForeground && a < 0.95f) || (t == kTrimapBackground && a > 0.05f)) ++wrong;
     }
   }
-  EXPECT_LT(wrong, 40) << "fg thr " << tstats.fg_threshold << " bg thr " << tstats.bg_threshold;  // a few hair tips beyond the band: common practice
+  EXPECT_LT(wrong, 40) << "fg thr " << tstats.fg_threshold << " bg thr "
+                       << tstats.bg_threshold;  // a few hair tips beyond the band: common practice
   ClosedFormOptions copt;
   copt.difference_sigma = tstats.difference_sigma;
   ClosedFormStats cstats;
@@ -283,8 +285,8 @@ Eigen::MatrixXd DenseLaplacian(const cv::Mat& image, double eps) {
       const Eigen::Matrix<double, 9, 3> z = c.rowwise() - mu;
       const Eigen::Matrix3d sigma = z.transpose() * z / 9.0;
       const Eigen::Matrix3d inv = (sigma + eps / 9.0 * Eigen::Matrix3d::Identity()).inverse();
-      const Eigen::Matrix<double, 9, 9> block =
-          Eigen::Matrix<double, 9, 9>::Identity() - (Eigen::Matrix<double, 9, 9>::Ones() + z * inv * z.transpose()) / 9.0;
+      const Eigen::Matrix<double, 9, 9> block = Eigen::Matrix<double, 9, 9>::Identity() -
+                                                (Eigen::Matrix<double, 9, 9>::Ones() + z * inv * z.transpose()) / 9.0;
       for (int a = 0; a < 9; ++a) {
         for (int b = 0; b < 9; ++b) l(idx[a], idx[b]) += block(a, b);
       }

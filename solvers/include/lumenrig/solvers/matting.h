@@ -60,10 +60,10 @@ struct BacklitOptions {
 };
 
 struct BacklitStats {
-  double noise_sigma = 0.0;     ///< sigma used (estimated or given)
+  double noise_sigma = 0.0;              ///< sigma used (estimated or given)
   double mean_spill_rgb[3] = {0, 0, 0};  ///< mean spill over confident foreground
   int64_t plate_zero_pixels = 0;
-  int64_t spill_pixels = 0;     ///< confident-foreground pixels used for the spill estimate
+  int64_t spill_pixels = 0;  ///< confident-foreground pixels used for the spill estimate
 };
 
 /// Backlit ratio matte. With P = plate - dark and K = backlit - dark
@@ -81,13 +81,13 @@ io::Status BacklitMatte(const cv::Mat& plate, const cv::Mat& backlit, const cv::
 // ---------------------------------------------------------- triangulation --
 
 struct TriangulationOptions {
-  double noise_sigma = 0.0;      ///< per-channel frame sigma; 0 = estimate from frame0 - plate0
-  double snap_sigmas = 2.0;      ///< as BacklitOptions::snap_sigmas
+  double noise_sigma = 0.0;  ///< per-channel frame sigma; 0 = estimate from frame0 - plate0
+  double snap_sigmas = 2.0;  ///< as BacklitOptions::snap_sigmas
   /// Pixels where the plates differ by less than this many sigmas (spread of
   /// the plates around their mean, all channels) cannot be triangulated:
   /// confidence 0, alpha filled from valid neighbours.
   double min_plate_separation_snr = 5.0;
-  double alpha_tolerance = 0.05; ///< as BacklitOptions::alpha_tolerance
+  double alpha_tolerance = 0.05;  ///< as BacklitOptions::alpha_tolerance
   /// Regularisation of un-premultiplying (see UnpremultiplyForeground).
   double colour_lambda = 1e-3;
   double colour_blur_px = 6.0;
@@ -138,8 +138,8 @@ struct TrimapStats {
 /// outside the subject dilated by band_px - band_px/2, unknown between.
 /// Semi-transparent regions wider than band_px/2 inside the silhouette need
 /// a wider band or a user trimap.
-io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const TrimapOptions& options,
-                            cv::Mat* trimap, TrimapStats* stats = nullptr);
+io::Status DifferenceTrimap(const cv::Mat& plate, const cv::Mat& frame, const TrimapOptions& options, cv::Mat* trimap,
+                            TrimapStats* stats = nullptr);
 
 /// The plain difference matte used as the baseline that refinement must
 /// beat: clamp((|frame - plate| - t_bg) / (t_fg - t_bg), 0, 1) with the
@@ -194,8 +194,8 @@ struct ClosedFormStats {
 /// known-background prior. `alpha` is overwritten: 0/1 at known pixels,
 /// clamped solution in the band.
 io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv::Mat& trimap,
-                            const ClosedFormOptions& options, cv::Mat* alpha,
-                            ClosedFormStats* stats = nullptr, int threads = 0);
+                            const ClosedFormOptions& options, cv::Mat* alpha, ClosedFormStats* stats = nullptr,
+                            int threads = 0);
 
 /// The matting Laplacian restricted to the trimap-unknown pixels (any label
 /// other than kTrimapBackground / kTrimapForeground), in raster order, for
