@@ -260,8 +260,8 @@ io::Status MattingLaplacianBand(const cv::Mat& image, const cv::Mat& trimap, dou
 io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv::Mat& trimap,
                             const ClosedFormOptions& options, cv::Mat* alpha, ClosedFormStats* stats, int threads) {
   if (!(options.epsilon > 0) || !(options.colour_level >= 0) || !(options.background_prior_weight >= 0) ||
-      !(options.difference_sigma >= 0) || !(options.snap_sigmas >= 0) || !(options.foreground_blur_px > 0) ||
-      !(options.cg_tolerance > 0) || options.max_iterations < 1) {
+      !(options.colour_prior_weight >= 0) || !(options.difference_sigma >= 0) || !(options.snap_sigmas >= 0) ||
+      !(options.foreground_blur_px > 0) || !(options.cg_tolerance > 0) || options.max_iterations < 1) {
     return io::Status::BadInput(
         "closed-form matting options: epsilon, blur, tolerance, iterations must be positive; weights >= 0");
   }
@@ -292,12 +292,14 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
   Eigen::VectorXd rhs;
   LUMENRIG_RETURN_IF_ERROR(BuildBand(image, trimap, options.epsilon, level, index, &a_matrix, &rhs, threads));
 
-  // Known-background prior: a_hat = projection of I - B on F^ - B.
+  // Known-background constraint: a band pixel whose colour matches the plate
+  // within the noise (|I - B|^2 <= 3 sigma_d^2) is pulled to alpha 0.
+  // Optional colour prior: a_hat = (I - B).(F^ - B) / |F^ - B|^2 with F^ the
+  // local known-foreground colour (also the CG starting guess and the snap scale).
   Eigen::VectorXd guess = Eigen::VectorXd::Constant(n, 0.5);
   Eigen::VectorXd prior_weight = Eigen::VectorXd::Zero(n);
-  // Alpha standard deviation sigma / |F^ - B| per band pixel (0 = unknown).
-  std::vector<double> sigma_alpha(static_cast<size_t>(n), 0.0);
-  if (!plate.empty() && options.background_prior_weight > 0) {
+  std::vector<double> sigma_alpha(static_cast<size_t>(n), 0.0);  // sigma_d / |F^ - B|; 0 = unknown
+  if (!plate.empty()) {
     std::vector<Eigen::Vector3d> fg_colour;
     std::vector<double> fg_weight;
     LocalForeground(image, trimap, index, options.foreground_blur_px, &fg_colour, &fg_weight);
@@ -307,22 +309,19 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
       const float* ip = image.ptr<float>(y) + 3 * x;
       const float* bp = plate.ptr<float>(y) + 3 * x;
       const Eigen::Vector3d ib(ip[0] - bp[0], ip[1] - bp[1], ip[2] - bp[2]);
-      if (fg_weight[i] <= 0.0) {
-        // No foreground nearby: only a pixel matching the plate is evidence (a = 0).
-        if (ib.squaredNorm() <= 3.0 * noise2) {
-          guess[i] = 0.0;
-          prior_weight[i] = options.background_prior_weight;
+      if (fg_weight[i] > 0.0) {
+        const Eigen::Vector3d fb = fg_colour[i] - Eigen::Vector3d(bp[0], bp[1], bp[2]);
+        if (fb.squaredNorm() > 0) {
+          const double sep = fb.squaredNorm();
+          guess[i] = std::clamp(ib.dot(fb) / sep, 0.0, 1.0);
+          prior_weight[i] = options.colour_prior_weight * fg_weight[i] * sep / (sep + noise2 + 1e-30);
+          sigma_alpha[i] = options.difference_sigma / fb.norm();
         }
-        continue;
       }
-      const Eigen::Vector3d fb = fg_colour[i] - Eigen::Vector3d(bp[0], bp[1], bp[2]);
-      const double sep = fb.squaredNorm() / (level * level);
-      if (!(sep > 0)) continue;
-      const double a_hat = std::clamp(ib.dot(fb) / fb.squaredNorm(), 0.0, 1.0);
-      const double separation = sep / (sep + noise2 / (level * level) + 1e-12);
-      guess[i] = a_hat;
-      prior_weight[i] = options.background_prior_weight * separation * fg_weight[i];
-      sigma_alpha[i] = options.difference_sigma / fb.norm();
+      if (options.difference_sigma > 0 && ib.squaredNorm() <= noise2 / 3.0) {
+        guess[i] = 0.0;
+        prior_weight[i] = options.background_prior_weight;
+      }
     }
   }
   for (int64_t i = 0; i < n; ++i) {

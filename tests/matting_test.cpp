@@ -212,7 +212,7 @@ TEST(DifferenceMatting, RefinementBeatsPlainDifferenceMatte) {
   std::printf("difference matte MSE: plain %.3g refined %.3g (band %lld px, %d CG iterations)\n", mse_plain,
               mse_refined, static_cast<long long>(cstats.unknown_pixels), cstats.iterations);
   EXPECT_LT(mse_refined, 0.5 * mse_plain) << "refined " << mse_refined << " plain " << mse_plain;
-  EXPECT_LT(mse_refined, 2e-3);
+  EXPECT_LT(mse_refined, 1e-3);  // measured 2.4e-4 (common practice margin)
   // Threads do not change the result (fixed chunks, per-row assembly).
   cv::Mat refined2;
   ASSERT_TRUE(RefineClosedForm(lit, plate, trimap, copt, &refined2, nullptr, 1).ok());
