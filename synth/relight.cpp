@@ -118,6 +118,9 @@ LightWeights ComputeLightWeights(const cv::Mat& latlong, const io::Rig& rig, con
         out.weights.row(i) = l.cast<double>().transpose() * *light.solid_angle_sr;
       }
     }
+    // Near-field light: its frame is albedo/pi cos / d^2 per unit intensity
+    // (docs/formats.md), so the weight carries d^2 (subject at the rig origin).
+    if (!light.direction && light.position) out.weights.row(i) *= light.position->squaredNorm();
     for (int c = 0; c < 3; ++c) {
       const double intensity = light.intensity(c);
       out.weights(i, c) = intensity > 0 ? out.weights(i, c) / intensity : 0.0;

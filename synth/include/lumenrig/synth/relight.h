@@ -66,7 +66,9 @@ struct LightWeights {
 /// w_i = integral over cell i of L dw (or, when the light has solid_angle_sr,
 /// the cell's mean radiance times solid_angle_sr; a light whose cell has no
 /// texel then uses the radiance sampled at its direction), divided by the
-/// light's intensity per channel. `latlong` must be cells.height x 2 height
+/// light's intensity per channel; a near-field light's weight is multiplied
+/// by |position|^2 (its frames fall off as 1/d^2, docs/formats.md; the
+/// subject is taken to be at the rig origin). `latlong` must be cells.height x 2 height
 /// (see LightWeightOptions::integration_height and ResampleLatLong).
 LightWeights ComputeLightWeights(const cv::Mat& latlong, const io::Rig& rig, const LightCells& cells);
 
@@ -121,5 +123,39 @@ struct RelightStats {
 /// position in `weights` and K, never on threads or the budget.
 io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& weights, const RelightOptions& options,
                         std::vector<cv::Mat>* relit, RelightStats* stats = nullptr);
+
+}  // namespace lumenrig::synth
+
+namespace lumenrig::synth {
+
+struct EnvMap;
+
+/// Options of the `relight` stage.
+struct RelightCameraOptions {
+  double rotate_deg = 0.0;         ///< applied to every map (RotateLatLong)
+  double target_luminance = 0.0;   ///< > 0: NormaliseExposure to this mean BT.709 luminance first
+  double exposure_ev = 0.0;        ///< then multiply by 2^exposure_ev
+  LightWeightOptions weights;
+  RelightOptions relight;
+};
+
+/// What a relight run did, for the CLI line and the pipeline's provenance.
+struct RelightSummary {
+  int maps = 0;
+  int lights = 0;
+  int width = 0, height = 0;
+  int64_t clamped_texels = 0;                    ///< over all maps (from loading)
+  std::vector<double> uncovered_energy_fraction; ///< per map
+  std::vector<double> exposure_scale;            ///< per map, total factor applied
+  RelightStats stats;
+  double seconds = 0;
+};
+
+/// Relights one camera of a session under `maps` (all in one batch): reads
+/// the OLAT stack once in bands. `camera_id` empty = the first camera.
+/// Output: one CV_32FC3 image per map in the maps' radiance units.
+io::Status RelightCamera(const io::Session& session, const std::string& camera_id, const std::vector<EnvMap>& maps,
+                         const RelightCameraOptions& options, std::vector<cv::Mat>* relit,
+                         RelightSummary* summary = nullptr);
 
 }  // namespace lumenrig::synth
