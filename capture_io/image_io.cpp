@@ -15,6 +15,7 @@
 #include <opencv2/imgcodecs.hpp>
 #include <opencv2/imgproc.hpp>
 
+#include "band_readers_internal.h"
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/color.h"
 
@@ -266,13 +267,18 @@ class WholeImageBandReader : public BandReader {
 
 }  // namespace
 
+Expected<std::unique_ptr<BandReader>> OpenWholeImageBandReader(const std::string& path, FileFormat format,
+                                                               const DecodeOptions& options) {
+  return WholeImageBandReader::Open(path, format, options);
+}
+
 Expected<std::unique_ptr<BandReader>> BandReader::Open(const std::string& path, const DecodeOptions& options) {
   LUMENRIG_RETURN_IF_ERROR(FileMissing(path));
   const FileFormat format = FormatFromPath(path);
   switch (format) {
     case FileFormat::kExr: return ExrBandReader::Open(path, options);
-    case FileFormat::kPng:
-    case FileFormat::kTiff:
+    case FileFormat::kPng: return OpenPngBandReader(path, options);
+    case FileFormat::kTiff: return OpenTiffBandReader(path, options);
     case FileFormat::kHdr: return WholeImageBandReader::Open(path, format, options);
     default:
       return Status::BadInput(fmt::format("{}: unsupported image format (expected .exr, .png, .tif/.tiff or .hdr)", path));
