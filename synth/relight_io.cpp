@@ -6,6 +6,7 @@
 
 #include <fmt/format.h>
 
+#include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/parallel.h"
 #include "lumenrig/synth/envmap.h"
@@ -179,6 +180,30 @@ io::Status RelightCamera(const io::Session& session, const std::string& camera_i
   sum.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   if (summary) *summary = sum;
   return io::Status::Ok();
+}
+
+}  // namespace lumenrig::synth
+
+namespace lumenrig::synth {
+
+io::Expected<std::vector<std::string>> WriteProceduralEnvMaps(const std::string& dir, int height, bool overwrite) {
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
+  const std::vector<std::pair<std::string, cv::Mat>> maps = {
+      {"sky-noon.exr", MakeSkyMap(height, Eigen::Vector3d(0.2, 0.95, 0.25), 3.0, 200.0f)},
+      {"sky-low-sun.exr", MakeSkyMap(height, Eigen::Vector3d(-0.8, 0.25, -0.5), 4.0, 60.0f)},
+      {"studio-softboxes.exr", MakeStudioMap(height)},
+  };
+  std::vector<std::string> paths;
+  for (const auto& [name, image] : maps) {
+    io::ExrWriteOptions w;
+    w.pixel_type = io::PixelType::kFloat;
+    w.overwrite = overwrite;
+    w.attributes = {{"lumenrig.tool", "lumenrig procedural environment map"}, {"lumenrig.layout", "lat-long, DESIGN.md"}};
+    const std::string p = (fs::path(dir) / name).string();
+    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(p, image, w));
+    paths.push_back(p);
+  }
+  return paths;
 }
 
 }  // namespace lumenrig::synth

@@ -93,3 +93,12 @@ cv::Mat MakeStudioMap(int height);
 cv::Mat MakeSmoothMap(int height);
 
 }  // namespace lumenrig::synth
+
+namespace lumenrig::synth {
+
+/// Writes the procedural maps used by tests and the demo into `dir` (created
+/// when missing) as float OpenEXR: sky-noon.exr, sky-low-sun.exr,
+/// studio-softboxes.exr, each `height` x 2 height. Returns the paths.
+io::Expected<std::vector<std::string>> WriteProceduralEnvMaps(const std::string& dir, int height, bool overwrite);
+
+}  // namespace lumenrig::synth
