@@ -15,22 +15,29 @@ LR="$BUILD/cli/lumenrig"
 WORK=$(mktemp -d /tmp/lumenrig-pairs-bench-XXXXXX)
 trap 'rm -rf "$WORK"' EXIT
 session_for() {  # lights -> session dir (written once by relight_bench)
-  LUMENRIG_BENCH_SIZE=$SIZE LUMENRIG_BENCH_LIGHTS=$1 "$BUILD/bench/relight_bench" --benchmark_filter=NONE | sed -n 's/^session: //p'
+  LUMENRIG_BENCH_SIZE=$SIZE LUMENRIG_BENCH_LIGHTS=$1 "$BUILD/bench/relight_bench" --benchmark_filter=NONE 2>/dev/null | sed -n 's/^session: //p'
 }
 S156=$(session_for 156)
 S40=$(session_for 40)
 "$LR" envmaps --out "$WORK/envs" --height 256 >/dev/null
 
 echo "== pairs/s at ${SIZE}x${SIZE}, 156 lights, all auxiliary targets, $COUNT samples, $THREADS threads =="
-t0=$(date +%s.%N)
-"$LR" pairs "$S156" --envs "$WORK/envs" --out "$WORK/ours.h5" --count "$COUNT" --seed 1 --size "${SIZE}x${SIZE}" \
-  --batch 8 --threads "$THREADS" --mem-budget 2G | tee "$WORK/ours.txt"
-t1=$(date +%s.%N)
-ours=$(python3 -c "print($COUNT/($t1-$t0))")
-OPENBLAS_NUM_THREADS=$THREADS /usr/bin/python3 "$ROOT/bench/reference/relight_numpy.py" "$S156" "$WORK/envs" "$COUNT" "$SIZE" \
-  "$WORK/numpy.h5" 1 | tee "$WORK/numpy.txt"
-ref=$(sed -n 's/.*= \([0-9.]*\) pairs\/s.*/\1/p' "$WORK/numpy.txt")
-python3 -c "print(f'lumenrig pairs (end to end, incl. setup): {$ours:.3f} pairs/s; numpy reference (loop only): {$ref:.3f} pairs/s; ratio {$ours/$ref:.1f}x')"
+# End to end for both (setup included), wall and CPU (user+sys) seconds: the
+# CPU figure is robust when the machine is shared.
+/usr/bin/time -f "%e %U %S %M" -o "$WORK/ours.time" "$LR" pairs "$S156" --envs "$WORK/envs" --out "$WORK/ours.h5" \
+  --count "$COUNT" --seed 1 --size "${SIZE}x${SIZE}" --batch 8 --threads "$THREADS" --mem-budget 2G | tail -3
+OPENBLAS_NUM_THREADS=$THREADS /usr/bin/time -f "%e %U %S %M" -o "$WORK/numpy.time" /usr/bin/python3 \
+  "$ROOT/bench/reference/relight_numpy.py" "$S156" "$WORK/envs" "$COUNT" "$SIZE" "$WORK/numpy.h5" 1
+python3 - "$WORK/ours.time" "$WORK/numpy.time" "$COUNT" <<'PY'
+import sys
+o = [float(x) for x in open(sys.argv[1]).read().split()[-4:]]
+n = [float(x) for x in open(sys.argv[2]).read().split()[-4:]]
+c = int(sys.argv[3])
+for name, t in (("lumenrig pairs", o), ("numpy reference", n)):
+    print(f"{name:16s}: {c / t[0]:.3f} pairs/s wall, {c / (t[1] + t[2]):.3f} pairs per CPU-second, peak RSS {t[3] / 1024:.0f} MiB")
+print(f"ratio lumenrig/numpy: {(c / o[0]) / (c / n[0]):.1f}x wall, {(n[1] + n[2]) / (o[1] + o[2]):.1f}x CPU, "
+      f"peak RSS {o[3] / n[3]:.2f}x")
+PY
 
 echo "== peak RSS of lumenrig relight (${SIZE}x${SIZE}) =="
 for lights in 40 156; do

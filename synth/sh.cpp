@@ -77,6 +77,23 @@ io::Status PrefilterPhong(const cv::Mat& latlong, const std::vector<double>& exp
   }
   const int ow = 2 * out_height, oh = out_height;
   const size_t ns = exponents.size();
+  // Integer exponents (the usual 1, 16, 32, 64) by repeated squaring; others
+  // through exp(s log c).
+  std::vector<int> int_exp(ns, -1);
+  for (size_t k = 0; k < ns; ++k) {
+    if (exponents[k] == std::floor(exponents[k]) && exponents[k] <= 1024) int_exp[k] = static_cast<int>(exponents[k]);
+  }
+  auto power = [&](double c, double log_c, size_t k) {
+    if (int_exp[k] < 0) return std::exp(exponents[k] * log_c);
+    double result = 1.0, base = c;
+    for (int e = int_exp[k]; e > 0; e >>= 1) {
+      if (e & 1) result *= base;
+      base *= base;
+    }
+    return result;
+  };
+  bool any_fractional = false;
+  for (int e : int_exp) any_fractional |= e < 0;
   out->exponents = exponents;
   out->maps.assign(ns, cv::Mat());
   for (auto& m : out->maps) m.create(oh, ow, CV_32FC3);
@@ -89,8 +106,8 @@ io::Status PrefilterPhong(const cv::Mat& latlong, const std::vector<double>& exp
         for (size_t i = 0; i < dirs.size(); ++i) {
           const double c = r.dot(dirs[i]);
           if (c <= 0.0) continue;
-          const double log_c = std::log(c);
-          for (size_t k = 0; k < ns; ++k) acc[k] += std::exp(exponents[k] * log_c) * rad[i];
+          const double log_c = any_fractional ? std::log(c) : 0.0;
+          for (size_t k = 0; k < ns; ++k) acc[k] += power(c, log_c, k) * rad[i];
         }
         for (size_t k = 0; k < ns; ++k) {
           const Eigen::Vector3d p = acc[k] * (exponents[k] + 1.0) / (2.0 * M_PI);
