@@ -279,10 +279,10 @@ Expected<std::unique_ptr<BandReader>> OpenTiffBandReader(const std::string& path
   TIFFGetFieldDefaulted(tif, TIFFTAG_PLANARCONFIG, &planar);
   TIFFGetFieldDefaulted(tif, TIFFTAG_SAMPLEFORMAT, &sample_format);
   if (TIFFGetField(tif, TIFFTAG_PHOTOMETRIC, &photometric) == 0) photometric = PHOTOMETRIC_MINISBLACK;
-  const bool streamable = !TIFFIsTiled(tif) && planar == PLANARCONFIG_CONTIG && (bits == 8 || bits == 16) &&
-                          sample_format == SAMPLEFORMAT_UINT && samples >= 1 && samples <= 4 &&
-                          ((photometric == PHOTOMETRIC_MINISBLACK && samples <= 2) ||
-                           (photometric == PHOTOMETRIC_RGB && samples >= 3));
+  const bool streamable =
+      !TIFFIsTiled(tif) && planar == PLANARCONFIG_CONTIG && (bits == 8 || bits == 16) &&
+      sample_format == SAMPLEFORMAT_UINT && samples >= 1 && samples <= 4 &&
+      ((photometric == PHOTOMETRIC_MINISBLACK && samples <= 2) || (photometric == PHOTOMETRIC_RGB && samples >= 3));
   if (!streamable) {
     TIFFClose(reader->tif_);
     reader->tif_ = nullptr;

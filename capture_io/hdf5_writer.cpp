@@ -204,8 +204,8 @@ struct H5Writer::Impl {
     if (!found.ok()) return found.status();
     Dataset& d = **found;
     if (d.spec.type != expect_a && d.spec.type != expect_b) {
-      return Status::Internal(fmt::format("{}: dataset {} holds {}, appended data of another type", path, name,
-                                          TypeName(d.spec.type)));
+      return Status::Internal(
+          fmt::format("{}: dataset {} holds {}, appended data of another type", path, name, TypeName(d.spec.type)));
     }
     if (count == 0) return Status::Ok();
     std::vector<hsize_t> new_dims{d.samples + count};
@@ -265,8 +265,7 @@ struct H5Writer::Impl {
   }
 
   // Writes attribute `key` on `object` (replacing an existing one).
-  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space,
-                        const void* data) {
+  Status WriteAttribute(const std::string& object, const std::string& key, hid_t type, hid_t space, const void* data) {
     auto obj = OpenObject(object);
     if (!obj.ok()) return obj.status();
     if (H5Aexists(obj->get(), key.c_str()) > 0) H5Adelete(obj->get(), key.c_str());
@@ -355,8 +354,8 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
     const H5DatasetSpec& have = (*found)->spec;
     if (have.type != spec.type || have.sample_shape != spec.sample_shape) {
       return Status::BadInput(fmt::format("{}: dataset {} exists as {} [{}], requested {} [{}]", path, spec.name,
-                                          TypeName(have.type), fmt::join(have.sample_shape, ","),
-                                          TypeName(spec.type), fmt::join(spec.sample_shape, ",")));
+                                          TypeName(have.type), fmt::join(have.sample_shape, ","), TypeName(spec.type),
+                                          fmt::join(spec.sample_shape, ",")));
     }
     return Status::Ok();
   }
@@ -375,6 +374,9 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
   Hid space(H5Screate_simple(rank, dims.data(), max_dims.data()), H5Sclose);
   Hid dcpl(H5Pcreate(H5P_DATASET_CREATE), H5Pclose);
   H5Pset_chunk(dcpl.get(), rank, chunk.data());
+  // No object timestamps: the same content gives the same bytes (resume and
+  // thread-count determinism can then compare whole files).
+  H5Pset_obj_track_times(dcpl.get(), 0);
   if (spec.gzip_level > 0 && spec.type != H5Type::kString) {
     // Shuffle before deflate: groups the bytes of each element so gzip sees
     // runs of similar high bytes (HDF5 filter pipeline order = call order).
@@ -384,14 +386,52 @@ Status H5Writer::CreateDataset(const H5DatasetSpec& spec) {
   Hid lcpl(H5Pcreate(H5P_LINK_CREATE), H5Pclose);
   H5Pset_create_intermediate_group(lcpl.get(), 1);
   Hid type = FileType(spec.type);
-  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(),
-                    H5P_DEFAULT),
+  Hid id(H5Dcreate2(impl_->file.get(), spec.name.c_str(), type.get(), space.get(), lcpl.get(), dcpl.get(), H5P_DEFAULT),
          H5Dclose);
   if (!id.valid()) return H5Fail(path, "cannot create dataset " + spec.name);
   Impl::Dataset d;
   d.id = std::move(id);
   d.spec = spec;
   impl_->datasets.emplace(spec.name, std::move(d));
+  return Status::Ok();
+}
+
+Status H5Writer::WriteImage(const std::string& name, const cv::Mat& image, H5Type type, int gzip_level) {
+  LUMENRIG_RETURN_IF_ERROR(impl_->CheckOpen());
+  const std::string& path = impl_->path;
+  if (image.empty() || image.depth() != CV_32F || (type != H5Type::kFloat16 && type != H5Type::kFloat32))
+    return Status::Internal(fmt::format("{}: WriteImage {} needs a CV_32F image and a float type", path, name));
+  if (H5Lexists(impl_->file.get(), name.c_str(), H5P_DEFAULT) > 0)
+    return Status::Internal(fmt::format("{}: dataset {} already exists", path, name));
+  H5Eclear2(H5E_DEFAULT);
+  const hsize_t dims[3] = {static_cast<hsize_t>(image.rows), static_cast<hsize_t>(image.cols),
+                           static_cast<hsize_t>(image.channels())};
+  // Chunks of 64 full rows: a reader of a row band touches few chunks.
+  const hsize_t chunk[3] = {std::min<hsize_t>(dims[0], 64), dims[1], dims[2]};
+  Hid space(H5Screate_simple(3, dims, nullptr), H5Sclose);
+  Hid dcpl(H5Pcreate(H5P_DATASET_CREATE), H5Pclose);
+  H5Pset_chunk(dcpl.get(), 3, chunk);
+  H5Pset_obj_track_times(dcpl.get(), 0);
+  if (gzip_level > 0) {
+    H5Pset_shuffle(dcpl.get());
+    H5Pset_deflate(dcpl.get(), static_cast<unsigned>(std::min(gzip_level, 9)));
+  }
+  Hid lcpl(H5Pcreate(H5P_LINK_CREATE), H5Pclose);
+  H5Pset_create_intermediate_group(lcpl.get(), 1);
+  Hid file_type = FileType(type);
+  Hid id(H5Dcreate2(impl_->file.get(), name.c_str(), file_type.get(), space.get(), lcpl.get(), dcpl.get(), H5P_DEFAULT),
+         H5Dclose);
+  if (!id.valid()) return H5Fail(path, "cannot create dataset " + name);
+  const cv::Mat src = image.isContinuous() ? image : image.clone();
+  herr_t rc;
+  if (type == H5Type::kFloat16) {
+    cv::Mat halves;
+    src.convertTo(halves, CV_MAKETYPE(CV_16F, src.channels()));
+    rc = H5Dwrite(id.get(), file_type.get(), H5S_ALL, H5S_ALL, H5P_DEFAULT, halves.data);
+  } else {
+    rc = H5Dwrite(id.get(), H5T_NATIVE_FLOAT, H5S_ALL, H5S_ALL, H5P_DEFAULT, src.data);
+  }
+  if (rc < 0) return H5Fail(path, "cannot write dataset " + name);
   return Status::Ok();
 }
 
@@ -573,7 +613,8 @@ Status H5Writer::Finalize() {
   }
   std::error_code ec;
   fs::rename(temp_path_, final_path_, ec);
-  if (ec) return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
+  if (ec)
+    return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
   return Status::Ok();
 }
 

@@ -147,6 +147,10 @@ class ExrBandReader : public BandReader {
     } catch (const std::exception& e) {
       return Status::BadInput(fmt::format("{}: not a readable OpenEXR file ({})", path, FirstLine(e.what())));
     }
+    // A file cut short still opens (OpenEXR rebuilds the offset table);
+    // isComplete() says whether every scan line block is present.
+    if (!reader->file_->isComplete())
+      return Status::BadInput(fmt::format("{}: truncated OpenEXR file (not all scan lines are present)", path));
     const Imf::Header& header = reader->file_->header();
     auto map = MapExrChannels(header, path);
     if (!map.ok()) return map.status();
@@ -288,7 +292,15 @@ Expected<std::unique_ptr<BandReader>> BandReader::Open(const std::string& path, 
 Expected<ImageInfo> ProbeImage(const std::string& path) {
   auto reader = BandReader::Open(path, {});
   if (!reader.ok()) return reader.status();
-  return (*reader)->info();
+  const ImageInfo& info = (*reader)->info();
+  if (info.format == FileFormat::kExr) {
+    // A file cut short keeps a valid offset table pointing past its end:
+    // decoding the last line block (written last) finds it at the cost of
+    // one block.
+    cv::Mat last_row;
+    LUMENRIG_RETURN_IF_ERROR((*reader)->ReadRows(info.height - 1, info.height, &last_row));
+  }
+  return info;
 }
 
 Expected<cv::Mat> ReadImage(const std::string& path, const DecodeOptions& options) {

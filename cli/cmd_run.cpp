@@ -4,6 +4,9 @@
 #include <mutex>
 
 #include <tbb/global_control.h>
+#ifdef LUMENRIG_WITH_MPI
+#include <mpi.h>
+#endif
 
 #include "command.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -111,6 +114,45 @@ class ProgressDisplay {
   Clock::time_point start_;
 };
 
+/// MPI sharding: when started by an MPI launcher (mpirun sets the world
+/// size in the environment), each rank runs its share of the sessions and the
+/// exit code is the worst over all ranks. Without a launcher MPI is not
+/// initialised at all.
+class MpiShard {
+ public:
+  MpiShard() {
+#ifdef LUMENRIG_WITH_MPI
+    if (std::getenv("OMPI_COMM_WORLD_SIZE") == nullptr && std::getenv("PMI_SIZE") == nullptr) return;
+    int provided = 0;
+    MPI_Init_thread(nullptr, nullptr, MPI_THREAD_FUNNELED, &provided);
+    MPI_Comm_rank(MPI_COMM_WORLD, &rank_);
+    MPI_Comm_size(MPI_COMM_WORLD, &size_);
+    active_ = true;
+#endif
+  }
+  int rank() const { return rank_; }
+  int size() const { return size_; }
+  /// Combines exit codes over ranks (max) and shuts MPI down.
+  int Finish(int code) {
+#ifdef LUMENRIG_WITH_MPI
+    if (active_) {
+      int worst = code;
+      MPI_Allreduce(&code, &worst, 1, MPI_INT, MPI_MAX, MPI_COMM_WORLD);
+      MPI_Finalize();
+      return worst;
+    }
+#endif
+    return code;
+  }
+
+ private:
+  int rank_ = 0;
+  int size_ = 1;
+  bool active_ = false;
+};
+
+int RunCommand(RunArgs* args, const MpiShard& shard);
+
 std::function<int()> Setup(CLI::App* sub) {
   auto args = std::make_shared<RunArgs>();
   sub->add_option("sessions", args->options.sessions, "Session folders or session.json files")->required();
@@ -137,7 +179,16 @@ std::function<int()> Setup(CLI::App* sub) {
   sub->add_option("--size", args->pairs_size, "Training pair size WxH")->capture_default_str();
 
   return [args]() -> int {
+    MpiShard shard;
+    return shard.Finish(RunCommand(args.get(), shard));
+  };
+}
+
+int RunCommand(RunArgs* args, const MpiShard& shard) {
+  {
     auto& o = args->options;
+    o.shard_index = shard.rank();
+    o.shard_count = shard.size();
     io::Status s = ParseStages(args->stages, &o.stages);
     if (!s.ok()) return ReportError("run", s);
     auto budget = ParseByteSize(args->mem_budget, "--mem-budget");
@@ -178,7 +229,7 @@ std::function<int()> Setup(CLI::App* sub) {
     fmt::print("lumenrig run: {} unit(s) run, {}\n", to_run, TimeAndMemoryLine(wall));
     if (!s.ok()) return ReportError("run", s);
     return 0;
-  };
+  }
 }
 
 CommandRegistrar registrar({"run",

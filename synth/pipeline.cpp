@@ -51,6 +51,12 @@ const StageAdapter* FindAdapter(StageKind kind) {
   return nullptr;
 }
 
+std::string HashCachePath(const RunOptions& o) {
+  const std::string name = o.shard_count > 1 ? fmt::format(".lumenrig-hashes.{}.json", o.shard_index)
+                                             : std::string(".lumenrig-hashes.json");
+  return (fs::path(o.out_dir) / name).string();
+}
+
 std::string SessionOutDir(const RunOptions& o, const io::Session& s) { return (fs::path(o.out_dir) / s.Id()).string(); }
 
 std::string StampPath(const RunOptions& o, const UnitPlan& u, const io::Session& s) {
@@ -123,8 +129,12 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
   if (options.mem_budget_bytes < (int64_t{64} << 20))
     return io::Status::BadInput(fmt::format("--mem-budget: {} bytes is below the 64 MiB minimum", options.mem_budget_bytes));
   *plan = RunPlan();
+  if (options.shard_count < 1 || options.shard_index < 0 || options.shard_index >= options.shard_count)
+    return io::Status::Internal("run: invalid shard");
   std::map<std::string, std::string> seen_ids;
-  for (const auto& path : options.sessions) {
+  for (size_t i = 0; i < options.sessions.size(); ++i) {
+    if (static_cast<int>(i % static_cast<size_t>(options.shard_count)) != options.shard_index) continue;
+    const std::string& path = options.sessions[i];
     auto s = io::LoadSession(path);
     if (!s.ok()) return s.status();
     const std::string id = s->Id();
@@ -135,7 +145,7 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
     plan->sessions.push_back(std::move(s).value());
   }
 
-  io::FileHashCache hashes((fs::path(options.out_dir) / ".lumenrig-hashes.json").string());
+  io::FileHashCache hashes(HashCachePath(options));
 
   auto selected = [&](StageKind k) {
     for (auto s : options.stages)

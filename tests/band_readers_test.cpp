@@ -5,10 +5,10 @@
 #include <fstream>
 
 #include <gtest/gtest.h>
-#include <opencv2/imgcodecs.hpp>
-#include <opencv2/imgproc.hpp>
 #include <png.h>
 #include <tiffio.h>
+#include <opencv2/imgcodecs.hpp>
+#include <opencv2/imgproc.hpp>
 
 #include "../capture_io/band_readers_internal.h"
 #include "lumenrig/capture_io/image_io.h"
@@ -79,9 +79,8 @@ void WritePngWithLibpng(const std::string& path, int color_type, int bit_depth, 
   png_structp png = png_create_write_struct(PNG_LIBPNG_VER_STRING, nullptr, nullptr, nullptr);
   png_infop info = png_create_info_struct(png);
   png_init_io(png, f);
-  png_set_IHDR(png, info, kWidth, kHeight, bit_depth, color_type,
-               interlace ? PNG_INTERLACE_ADAM7 : PNG_INTERLACE_NONE, PNG_COMPRESSION_TYPE_DEFAULT,
-               PNG_FILTER_TYPE_DEFAULT);
+  png_set_IHDR(png, info, kWidth, kHeight, bit_depth, color_type, interlace ? PNG_INTERLACE_ADAM7 : PNG_INTERLACE_NONE,
+               PNG_COMPRESSION_TYPE_DEFAULT, PNG_FILTER_TYPE_DEFAULT);
   if (!palette.empty()) png_set_PLTE(png, info, palette.data(), static_cast<int>(palette.size()));
   png_write_info(png, info);
   if (bit_depth == 16) png_set_swap(png);
@@ -136,9 +135,9 @@ TEST_P(BandReaderVsOpenCv, BandsMatchWholeDecodeForSeveralHeights) {
 
 INSTANTIATE_TEST_SUITE_P(Formats, BandReaderVsOpenCv,
                          ::testing::Values(Case{".png", CV_8U, 1}, Case{".png", CV_8U, 3}, Case{".png", CV_8U, 4},
-                                           Case{".png", CV_16U, 1}, Case{".png", CV_16U, 3},
-                                           Case{".tif", CV_8U, 1}, Case{".tif", CV_8U, 3}, Case{".tif", CV_8U, 4},
-                                           Case{".tif", CV_16U, 1}, Case{".tif", CV_16U, 3}),
+                                           Case{".png", CV_16U, 1}, Case{".png", CV_16U, 3}, Case{".tif", CV_8U, 1},
+                                           Case{".tif", CV_8U, 3}, Case{".tif", CV_8U, 4}, Case{".tif", CV_16U, 1},
+                                           Case{".tif", CV_16U, 3}),
                          [](const auto& info) {
                            return info.param.ext.substr(1) + std::to_string(info.param.depth == CV_16U ? 16 : 8) +
                                   "bit" + std::to_string(info.param.channels) + "ch";
@@ -216,7 +215,8 @@ TEST(BandReaders, TiledTiffFallsBackToWholeDecode) {
     for (int tx = 0; tx < kWidth; tx += 16) {
       for (int y = 0; y < 16; ++y)
         for (int x = 0; x < 16; ++x)
-          for (int k = 0; k < 3; ++k) tile[(y * 16 + x) * 3 + k] = static_cast<uint8_t>((tx + x) * 3 + (ty + y) * 2 + k * 50);
+          for (int k = 0; k < 3; ++k)
+            tile[(y * 16 + x) * 3 + k] = static_cast<uint8_t>((tx + x) * 3 + (ty + y) * 2 + k * 50);
       ASSERT_GE(TIFFWriteTile(tif, tile.data(), tx, ty, 0, 0), 0);
     }
   }

@@ -40,11 +40,11 @@ void WriteRaw(const std::string& path, const std::vector<float>& v) {
 std::vector<float> TestValues(size_t n, float offset) {
   std::vector<float> v(n);
   for (size_t i = 0; i < n; ++i) v[i] = offset + std::sin(0.37f * static_cast<float>(i)) * 3.0f;
-  v[0] = 1e-6f;      // subnormal in binary16
-  v[1] = 70000.0f;   // above binary16 max (65504): +inf
+  v[0] = 1e-6f;     // subnormal in binary16
+  v[1] = 70000.0f;  // above binary16 max (65504): +inf
   v[2] = -0.0f;
   v[3] = 1.0f / 3.0f;
-  v[4] = 2049.0f;    // halfway between 2048 and 2050: ties to even
+  v[4] = 2049.0f;  // halfway between 2048 and 2050: ties to even
   return v;
 }
 
@@ -269,4 +269,39 @@ TEST(Hdf5Writer, ErrorsAreOneLineNamingTheFileAndPrintNothing) {
   EXPECT_NE(junk.status().message().find("junk.h5"), std::string::npos) << junk.status().message();
   EXPECT_NE(no_ds.message().find("/nope"), std::string::npos) << no_ds.message();
   EXPECT_NE(no_obj.message().find("a.h5"), std::string::npos) << no_obj.message();
+}
+
+TEST(Hdf5Writer, WriteImageIsReadByH5pyAndSameContentGivesSameBytes) {
+  TempDir dir;
+  cv::Mat img(70, 9, CV_32FC3);
+  cv::randu(img, -2.0f, 2.0f);
+  for (const char* name : {"a.h5", "b.h5"}) {
+    auto writer = H5Writer::Create(dir / name, false);
+    ASSERT_TRUE(writer.ok()) << writer.status().message();
+    ASSERT_TRUE((*writer)->WriteImage("/cameras/cam00/normals", img).ok());
+    ASSERT_TRUE((*writer)->WriteImage("/cameras/cam00/depth", img.reshape(1, 70 * 3), H5Type::kFloat32).ok());
+    ASSERT_TRUE((*writer)->Finalize().ok());
+  }
+  // Object timestamps are off, so identical content gives identical files.
+  auto ha = lumenrig::test::RunShell("cmp " + (dir / "a.h5") + " " + (dir / "b.h5"));
+  EXPECT_EQ(ha.exit_code, 0) << ha.out;
+  WriteRaw(dir / "img.f32", std::vector<float>(img.ptr<float>(0), img.ptr<float>(0) + img.total() * 3));
+  // Reference: h5py + numpy's float32 -> float16 (IEEE 754 round to nearest even).
+  const std::string script = R"PY(
+import sys, h5py, numpy as np
+f = h5py.File(sys.argv[1], 'r')
+n = f['/cameras/cam00/normals']
+assert n.shape == (70, 9, 3), n.shape
+assert n.dtype == np.float16, n.dtype
+assert n.chunks == (64, 9, 3), n.chunks
+assert n.compression == 'gzip' and n.shuffle
+ref = np.fromfile(sys.argv[2], dtype=np.float32).reshape(70, 9, 3).astype(np.float16)
+assert np.array_equal(n[...], ref)
+d = f['/cameras/cam00/depth']
+assert d.dtype == np.float32 and d.shape == (210, 9, 1), (d.dtype, d.shape)
+assert np.array_equal(d[...].reshape(-1), np.fromfile(sys.argv[2], dtype=np.float32))
+print("ok")
+)PY";
+  auto r = RunPython(dir, script, (dir / "a.h5") + " " + (dir / "img.f32"));
+  EXPECT_EQ(r.exit_code, 0) << r.out << r.err;
 }

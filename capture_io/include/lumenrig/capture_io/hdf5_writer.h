@@ -12,6 +12,8 @@
 #include <string>
 #include <vector>
 
+#include <opencv2/core.hpp>
+
 #include <nlohmann/json.hpp>
 
 #include "lumenrig/capture_io/status.h"
@@ -22,10 +24,10 @@ namespace lumenrig::io {
 enum class H5Type { kFloat16, kFloat32, kFloat64, kUInt8, kInt32, kInt64, kString };
 
 struct H5DatasetSpec {
-  std::string name;                 ///< absolute path, e.g. "/pairs/input"; groups are created
+  std::string name;                    ///< absolute path, e.g. "/pairs/input"; groups are created
   std::vector<uint64_t> sample_shape;  ///< shape of one sample, e.g. {H, W, 3}; {} for scalars
   H5Type type = H5Type::kFloat16;
-  int gzip_level = 4;               ///< 0 disables compression (and shuffle); ignored for kString
+  int gzip_level = 4;  ///< 0 disables compression (and shuffle); ignored for kString
   /// Samples per chunk; 0 = one sample for array samples, 1024 for scalar
   /// samples (sample_shape {}), so per-sample metadata is not one chunk each.
   uint64_t chunk_samples = 0;
@@ -53,6 +55,12 @@ class H5Writer {
   /// Creates an extendible dataset with 0 samples (or opens it when resuming
   /// and the shape/type match; mismatch is an error).
   Status CreateDataset(const H5DatasetSpec& spec);
+
+  /// Writes a whole image (CV_32F, H x W x C) as a fixed dataset [H, W, C]
+  /// of kFloat16 or kFloat32, chunked by 64 rows, gzip + shuffle when
+  /// gzip_level > 0. Intermediate groups are created; an existing dataset is
+  /// an error.
+  Status WriteImage(const std::string& name, const cv::Mat& image, H5Type type = H5Type::kFloat16, int gzip_level = 4);
 
   /// Appends `count` samples. `data` holds count * prod(sample_shape)
   /// elements of float (for kFloat16/kFloat32, converted to half here),

@@ -48,6 +48,10 @@ struct RunOptions {
   int threads = 0;                           ///< 0 = all cores
   int64_t mem_budget_bytes = int64_t{4} << 30;  ///< shared by every unit in flight
   bool force = false;                        ///< run later stages despite a QA FAIL
+  /// Sharding across processes (MPI ranks): this process takes the sessions
+  /// whose position in `sessions` is shard_index modulo shard_count.
+  int shard_index = 0;
+  int shard_count = 1;
   bool dry_run = false;
 };
 
