@@ -120,7 +120,7 @@ CameraSimDraw DrawCameraSim(const CameraSimOptions& options, uint64_t seed) {
   return d;
 }
 
-cv::Mat SimulateCamera(const cv::Mat& linear, const CameraSimDraw& draw) {
+cv::Mat SimulateCameraResponse(const cv::Mat& linear, const CameraSimDraw& draw) {
   CV_Assert(linear.type() == CV_32FC3);
   std::mt19937_64 rng(draw.noise_seed);
   std::normal_distribution<float> normal(0.0f, 1.0f);

@@ -455,7 +455,7 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
         const Eigen::Matrix3d cam_in = cc.camera_from_rig * RotationAboutY(d.rot_in);
         const Eigen::Matrix3d cam_tgt = cc.camera_from_rig * RotationAboutY(d.rot_tgt);
         so.background = RenderBackground(envs[d.env_in].full, cc.intrinsics, W, H, cam_in, d.yaw, d.pitch);
-        so.input = SimulateCamera(CompositeOver(r_in, so.alpha, so.background), d.cam);
+        so.input = SimulateCameraResponse(CompositeOver(r_in, so.alpha, so.background), d.cam);
         so.target = cv::Mat::zeros(H, W, CV_32FC3);
         r_tgt.copyTo(so.target, so.alpha > 0.0f);
         std::vector<cv::Mat> spec;

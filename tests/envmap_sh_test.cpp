@@ -272,7 +272,7 @@ TEST(CameraSim, DeterministicFromSeedAndSrgbWithoutJitter) {
   cv::Mat lin(16, 16, CV_32FC3, cv::Scalar(0.2, 0.5, 0.001));
   CameraSimOptions o;
   const CameraSimDraw a = DrawCameraSim(o, 42), b = DrawCameraSim(o, 42), c = DrawCameraSim(o, 43);
-  EXPECT_EQ(cv::norm(SimulateCamera(lin, a), SimulateCamera(lin, b), cv::NORM_INF), 0.0);
+  EXPECT_EQ(cv::norm(SimulateCameraResponse(lin, a), SimulateCameraResponse(lin, b), cv::NORM_INF), 0.0);
   EXPECT_NE(a.exposure, c.exposure);
   CameraSimOptions none;
   none.exposure_sigma_ev = 0;
@@ -280,11 +280,11 @@ TEST(CameraSim, DeterministicFromSeedAndSrgbWithoutJitter) {
   none.read_noise = 0;
   none.shot_noise = 0;
   none.jpeg_probability = 0;
-  const cv::Mat enc = SimulateCamera(lin, DrawCameraSim(none, 1));
+  const cv::Mat enc = SimulateCameraResponse(lin, DrawCameraSim(none, 1));
   EXPECT_FLOAT_EQ(enc.at<cv::Vec3f>(3, 3)[1], io::LinearToSrgb(0.5f));
   EXPECT_FLOAT_EQ(enc.at<cv::Vec3f>(3, 3)[2], 12.92f * 0.001f);  // IEC 61966-2-1 linear segment
   none.jpeg_probability = 1.0;
-  const cv::Mat jpg = SimulateCamera(lin, DrawCameraSim(none, 1));
+  const cv::Mat jpg = SimulateCameraResponse(lin, DrawCameraSim(none, 1));
   EXPECT_LT(cv::norm(jpg, enc, cv::NORM_INF), 0.03);  // JPEG of a flat patch: small error (common practice)
 }
 

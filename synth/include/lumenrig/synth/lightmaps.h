@@ -77,6 +77,6 @@ CameraSimDraw DrawCameraSim(const CameraSimOptions& options, uint64_t seed);
 /// Applies exposure, white balance, noise, clamping to [0, 1], sRGB encoding
 /// (IEC 61966-2-1 via io::LinearToSrgb) and the optional JPEG round trip
 /// (OpenCV). Returns sRGB-encoded CV_32FC3 in [0, 1]. Deterministic in draw.
-cv::Mat SimulateCamera(const cv::Mat& linear, const CameraSimDraw& draw);
+cv::Mat SimulateCameraResponse(const cv::Mat& linear, const CameraSimDraw& draw);
 
 }  // namespace lumenrig::synth
