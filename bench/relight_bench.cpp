@@ -147,7 +147,11 @@ class RatioReporter : public benchmark::ConsoleReporter {
   void ReportRuns(const std::vector<Run>& runs) override {
     for (const auto& r : runs) {
       auto it = r.counters.find("maps");
-      if (it != r.counters.end()) maps_per_s_[r.benchmark_name()] = it->second.value;
+      if (it != r.counters.end()) {
+        maps_per_s_[r.benchmark_name()] = it->second.value;
+        cpu_s_[r.benchmark_name()] = r.GetAdjustedCPUTime();
+        wall_s_[r.benchmark_name()] = r.GetAdjustedRealTime();
+      }
     }
     ConsoleReporter::ReportRuns(runs);
   }
@@ -158,7 +162,13 @@ class RatioReporter : public benchmark::ConsoleReporter {
     for (int t : {1, 2}) {
       const double plain = get(fmt::format("BM_PlainGemm/32/{}/min_time:2.000/real_time", t));
       const double ours = get(fmt::format("BM_RelightBatchMemory/32/{}/min_time:2.000/real_time", t));
-      if (plain > 0) fmt::print("batched K=32 (in memory) / plain Eigen GEMM, {} thread(s): {:.1f}% (target >= 70%)\n", t, 100 * ours / plain);
+      const std::string pn = fmt::format("BM_PlainGemm/32/{}/min_time:2.000/real_time", t);
+      const std::string on = fmt::format("BM_RelightBatchMemory/32/{}/min_time:2.000/real_time", t);
+      if (plain > 0) {
+        fmt::print("batched K=32 (in memory) / plain Eigen GEMM, {} thread(s): {:.1f}% by wall time, {:.1f}% by CPU "
+                   "time (target >= 70%)\n",
+                   t, 100 * ours / plain, 100 * cpu_s_[pn] / cpu_s_[on]);
+      }
     }
     const double b32 = get("BM_RelightBatchDisk/32/2/min_time:2.000/real_time");
     const double b1 = get("BM_RelightBatchDisk/1/2/min_time:2.000/real_time");
@@ -166,7 +176,7 @@ class RatioReporter : public benchmark::ConsoleReporter {
   }
 
  private:
-  std::map<std::string, double> maps_per_s_;
+  std::map<std::string, double> maps_per_s_, cpu_s_, wall_s_;
 };
 
 }  // namespace
