@@ -4,6 +4,7 @@
 /// `CommandRegistrar`. Options are declared once with their help text (CLI11),
 /// so `--help` and usage errors come from the same declarations.
 
+#include <cstdint>
 #include <functional>
 #include <string>
 #include <vector>
@@ -37,5 +38,15 @@ int ReportError(const std::string& command, const io::Status& status);
 
 /// True when stderr is a terminal and NO_COLOR is unset.
 bool UseColor();
+
+/// True when stderr is a terminal (progress displays go there).
+bool StderrIsTerminal();
+
+/// Parses a byte size such as "512M", "4G", "1.5GiB" or "1073741824".
+/// Suffixes K, M, G, T are binary (powers of 1024), with optional "B"/"iB".
+io::Expected<int64_t> ParseByteSize(const std::string& text, const std::string& option_name);
+
+/// "3.2 s, peak RSS 812 MiB": the final line every long stage prints.
+std::string TimeAndMemoryLine(double wall_s);
 
 }  // namespace lumenrig::cli

@@ -12,6 +12,8 @@
 #include <string>
 #include <vector>
 
+#include <nlohmann/json.hpp>
+
 #include "lumenrig/capture_io/status.h"
 
 namespace lumenrig::io {
@@ -23,7 +25,10 @@ struct H5DatasetSpec {
   std::string name;                 ///< absolute path, e.g. "/pairs/input"; groups are created
   std::vector<uint64_t> sample_shape;  ///< shape of one sample, e.g. {H, W, 3}; {} for scalars
   H5Type type = H5Type::kFloat16;
-  int gzip_level = 4;               ///< 0 disables compression (and shuffle)
+  int gzip_level = 4;               ///< 0 disables compression (and shuffle); ignored for kString
+  /// Samples per chunk; 0 = one sample for array samples, 1024 for scalar
+  /// samples (sample_shape {}), so per-sample metadata is not one chunk each.
+  uint64_t chunk_samples = 0;
 };
 
 class H5Writer {
@@ -38,7 +43,8 @@ class H5Writer {
 
   /// Reopens the temporary file an interrupted run left for `final_path`
   /// (see TempPathFor) to append more samples. Error when none exists.
-  static Expected<std::unique_ptr<H5Writer>> Resume(const std::string& final_path);
+  /// An existing final_path is an error unless `overwrite`.
+  static Expected<std::unique_ptr<H5Writer>> Resume(const std::string& final_path, bool overwrite = false);
 
   /// The deterministic temporary name used for `final_path`
   /// ("<dir>/.<name>.partial").
@@ -58,24 +64,50 @@ class H5Writer {
   Status AppendInt64(const std::string& name, const int64_t* data, uint64_t count);
   Status AppendStrings(const std::string& name, const std::vector<std::string>& values);
 
-  /// Truncates every sample dataset listed to `count` samples (used by resume
-  /// to drop a partially appended sample).
+  /// Shrinks dataset `name` to its first `count` samples (used by resume to
+  /// drop a partially appended sample). count > NumSamples is an error.
   Status Truncate(const std::string& name, uint64_t count);
+
+  /// Reads samples [first, first+count) of a float16/float32/float64 dataset
+  /// converted to float (count * prod(sample_shape) values).
+  Status ReadFloat(const std::string& name, uint64_t first, uint64_t count, std::vector<float>* out) const;
+  /// Reads samples [first, first+count) of a string dataset.
+  Status ReadStrings(const std::string& name, uint64_t first, uint64_t count, std::vector<std::string>* out) const;
+
+  /// Creates a group and its parents (no-op when it exists).
+  Status CreateGroup(const std::string& path);
 
   /// Number of samples currently in a dataset (0 when it does not exist).
   uint64_t NumSamples(const std::string& name) const;
 
-  /// Attributes on the root ("/") or any existing group/dataset path.
+  /// Attributes on the root ("/") or any existing group/dataset path; an
+  /// existing attribute of that name is replaced. Strings are stored as
+  /// variable-length UTF-8 (h5py reads `str`), integers as 64-bit, doubles
+  /// as IEEE 64-bit, vectors as 1-D arrays.
   Status SetAttribute(const std::string& object, const std::string& key, const std::string& value);
+  Status SetAttribute(const std::string& object, const std::string& key, const char* value) {
+    return SetAttribute(object, key, std::string(value));
+  }
   Status SetAttribute(const std::string& object, const std::string& key, double value);
   Status SetAttribute(const std::string& object, const std::string& key, int64_t value);
+  Status SetAttribute(const std::string& object, const std::string& key, int value) {
+    return SetAttribute(object, key, static_cast<int64_t>(value));
+  }
+  Status SetAttribute(const std::string& object, const std::string& key, uint64_t value);
   Status SetAttribute(const std::string& object, const std::string& key, const std::vector<double>& values);
+  Status SetAttribute(const std::string& object, const std::string& key, const std::vector<std::string>& values);
+  /// Stores `value.dump()` as a string attribute (e.g. the run's options).
+  Status SetJsonAttribute(const std::string& object, const std::string& key, const nlohmann::json& value);
   /// Reads a string attribute back (resume checks the stored config).
   Expected<std::string> GetStringAttribute(const std::string& object, const std::string& key) const;
 
-  /// Flushes to disk (the temporary stays temporary).
+  /// Flushes to disk (the temporary stays temporary). After a Flush, a
+  /// process killed before the next one leaves a temporary that Resume opens
+  /// with the samples present at the Flush.
   Status Flush();
-  /// Closes the file and renames it to the final path.
+  /// Closes the file, fsyncs it and renames it to the final path. Further
+  /// calls on the writer fail. Destroying a writer without Finalize closes
+  /// the temporary and leaves it for Resume; the final path is never touched.
   Status Finalize();
 
   const std::string& final_path() const { return final_path_; }

@@ -107,10 +107,16 @@ Expected<Rig> LoadRig(const std::string& rig_json_path);
 /// Validates an in-memory rig; `source` names the file in messages.
 Status ValidateRig(const nlohmann::json& j, const std::string& source);
 
+struct LoadOptions {
+  /// When true (default) every referenced file must exist. The session check
+  /// sets it to false so that a missing frame becomes a reported FAIL.
+  bool require_files = true;
+};
+
 /// Loads `session.json` (or a folder containing it) and its rig. Checks keys,
 /// types, light ids against the rig, duplicate slots, paths staying inside the
 /// session folder and existing on disk. Does not decode images.
-Expected<Session> LoadSession(const std::string& session_path_or_dir);
+Expected<Session> LoadSession(const std::string& session_path_or_dir, const LoadOptions& options = {});
 
 /// Serialises a session/rig back to JSON (paths made relative to session.dir).
 nlohmann::json SessionToJson(const Session& session);

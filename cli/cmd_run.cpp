@@ -1,0 +1,190 @@
+// `lumenrig run`: the whole pipeline for one or more sessions.
+#include <chrono>
+#include <cstdio>
+#include <mutex>
+
+#include <tbb/global_control.h>
+
+#include "command.h"
+#include "lumenrig/capture_io/parallel.h"
+#include "lumenrig/synth/pipeline.h"
+
+namespace lumenrig::cli {
+namespace {
+
+struct RunArgs {
+  synth::RunOptions options;
+  std::string stages = "check,normals,matte,assemble,pairs";
+  std::string mem_budget = "4G";
+  bool stats = false;
+  std::string normals_method = "robust";
+  std::string matte_method = "auto";
+  int pairs_count = 16;
+  uint64_t pairs_seed = 1;
+  std::string pairs_size = "256x256";
+};
+
+io::Status ParseStages(const std::string& text, std::vector<synth::StageKind>* out) {
+  out->clear();
+  size_t start = 0;
+  while (start <= text.size()) {
+    const size_t comma = text.find(',', start);
+    const std::string name = text.substr(start, comma == std::string::npos ? std::string::npos : comma - start);
+    bool found = false;
+    for (auto k : {synth::StageKind::kCheck, synth::StageKind::kNormals, synth::StageKind::kMatte,
+                   synth::StageKind::kAssemble, synth::StageKind::kPairs}) {
+      if (name == synth::StageName(k)) {
+        out->push_back(k);
+        found = true;
+      }
+    }
+    if (!found)
+      return io::Status::BadInput(
+          fmt::format("--stages: unknown stage \"{}\" (choose from check,normals,matte,assemble,pairs)", name));
+    if (comma == std::string::npos) break;
+    start = comma + 1;
+  }
+  return io::Status::Ok();
+}
+
+/// One status line on a terminal, plain log lines otherwise.
+class ProgressDisplay {
+ public:
+  ProgressDisplay(int total_units, bool tty) : total_(total_units), tty_(tty), start_(Clock::now()) {}
+
+  void Started(const synth::UnitPlan& u) {
+    std::lock_guard<std::mutex> lock(mutex_);
+    current_ = Label(u);
+    fraction_ = 0;
+    if (!tty_) fmt::print(stderr, "lumenrig run: start {}\n", current_);
+    Draw();
+  }
+  void Progress(const synth::UnitPlan& u, double f) {
+    std::lock_guard<std::mutex> lock(mutex_);
+    current_ = Label(u);
+    fraction_ = f;
+    Draw();
+  }
+  void Finished(const synth::UnitPlan& u, const io::Status& s, double wall) {
+    std::lock_guard<std::mutex> lock(mutex_);
+    ++done_;
+    fraction_ = 0;
+    if (tty_) fmt::print(stderr, "\r\033[K");
+    if (s.ok()) {
+      fmt::print(stderr, "lumenrig run: done  {} in {:.1f} s\n", Label(u), wall);
+    } else {
+      fmt::print(stderr, "lumenrig run: FAILED {}: {}\n", Label(u), s.message());
+    }
+    Draw();
+  }
+  void Close() {
+    if (tty_) fmt::print(stderr, "\r\033[K");
+  }
+
+ private:
+  using Clock = std::chrono::steady_clock;
+  static std::string Label(const synth::UnitPlan& u) {
+    return fmt::format("{} {}{}", u.session_id, u.camera_id.empty() ? "" : u.camera_id + " ", synth::StageName(u.stage));
+  }
+  void Draw() {
+    if (!tty_) return;
+    const double elapsed = std::chrono::duration<double>(Clock::now() - start_).count();
+    const double progress = (done_ + fraction_) / std::max(1, total_);
+    const double rate = elapsed > 0 ? (done_ + fraction_) / elapsed * 60.0 : 0.0;
+    std::string eta = "--:--";
+    if (progress > 0.01) {
+      const int s = static_cast<int>(elapsed / progress - elapsed);
+      eta = fmt::format("{:02d}:{:02d}", s / 60, s % 60);
+    }
+    const int width = 24;
+    const int filled = static_cast<int>(progress * width);
+    fmt::print(stderr, "\r\033[K[{}{}] {}/{} units {:.1f}/min ETA {} | {} {:.0f}%", std::string(filled, '#'),
+               std::string(width - filled, '.'), done_, total_, rate, eta, current_, fraction_ * 100);
+    std::fflush(stderr);
+  }
+  std::mutex mutex_;
+  int total_;
+  int done_ = 0;
+  bool tty_;
+  double fraction_ = 0;
+  std::string current_;
+  Clock::time_point start_;
+};
+
+std::function<int()> Setup(CLI::App* sub) {
+  auto args = std::make_shared<RunArgs>();
+  sub->add_option("sessions", args->options.sessions, "Session folders or session.json files")->required();
+  sub->add_option("--out", args->options.out_dir, "Output folder (created; reruns resume in it)")->required();
+  sub->add_option("--envs", args->options.envs_dir, "Folder of lat-long HDR maps; enables the pairs stage");
+  sub->add_option("--stages", args->stages, "Comma list of stages to run (check,normals,matte,assemble,pairs)")
+      ->capture_default_str();
+  sub->add_option("--threads", args->options.threads, "Worker threads for every stage (0 = all cores)")
+      ->capture_default_str();
+  sub->add_option("--mem-budget", args->mem_budget, "Memory budget shared by all work in flight (e.g. 2G)")
+      ->capture_default_str();
+  sub->add_flag("--force", args->options.force, "Run later stages even when the session check FAILs");
+  sub->add_flag("--dry-run", args->options.dry_run, "List what would run and why (stale, missing, up to date)");
+  sub->add_flag("--stats", args->stats, "Print per-stage wall time, CPU time and peak memory at the end");
+  sub->add_option("--normals-method", args->normals_method, "Photometric stereo method: lsq or robust")
+      ->check(CLI::IsMember({"lsq", "robust"}))
+      ->capture_default_str();
+  sub->add_option("--matte-method", args->matte_method,
+                  "Matting method: auto, backlit, triangulation or difference (auto picks from the session keys)")
+      ->check(CLI::IsMember({"auto", "backlit", "triangulation", "difference"}))
+      ->capture_default_str();
+  sub->add_option("--count", args->pairs_count, "Training pairs per session (pairs stage)")->capture_default_str();
+  sub->add_option("--seed", args->pairs_seed, "Seed of the training pairs")->capture_default_str();
+  sub->add_option("--size", args->pairs_size, "Training pair size WxH")->capture_default_str();
+
+  return [args]() -> int {
+    auto& o = args->options;
+    io::Status s = ParseStages(args->stages, &o.stages);
+    if (!s.ok()) return ReportError("run", s);
+    auto budget = ParseByteSize(args->mem_budget, "--mem-budget");
+    if (!budget.ok()) return ReportError("run", budget.status());
+    o.mem_budget_bytes = *budget;
+    o.normals_options = {{"method", args->normals_method}};
+    o.matte_options = {{"method", args->matte_method}};
+    o.pairs_options = {{"count", args->pairs_count}, {"seed", args->pairs_seed}, {"size", args->pairs_size}};
+    tbb::global_control cap(tbb::global_control::max_allowed_parallelism,
+                            static_cast<size_t>(io::ResolveThreads(o.threads)));
+
+    const auto t0 = std::chrono::steady_clock::now();
+    synth::RunPlan plan;
+    s = synth::PlanRun(o, &plan);
+    if (!s.ok()) return ReportError("run", s);
+    if (o.dry_run) {
+      for (const auto& line : plan.Describe()) fmt::print("{}\n", line);
+      return 0;
+    }
+    int to_run = 0;
+    for (const auto& u : plan.units) to_run += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
+    ProgressDisplay display(to_run, StderrIsTerminal());
+    synth::RunEvents events;
+    events.unit_started = [&](const synth::UnitPlan& u) { display.Started(u); };
+    events.unit_progress = [&](const synth::UnitPlan& u, double f) { display.Progress(u, f); };
+    events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, double w) { display.Finished(u, st, w); };
+    synth::RunReport report;
+    s = synth::ExecuteRun(o, &plan, events, &report);
+    display.Close();
+    if (args->stats) {
+      fmt::print("{:<9} {:>5} {:>7} {:>10} {:>10} {:>12}\n", "stage", "ran", "skipped", "wall s", "cpu s", "peak RSS MiB");
+      for (const auto& st : report.stages)
+        fmt::print("{:<9} {:>5} {:>7} {:>10.2f} {:>10.2f} {:>12.0f}\n", synth::StageName(st.stage), st.units_run,
+                   st.units_skipped, st.wall_s, st.cpu_s, static_cast<double>(st.peak_rss_bytes) / (1 << 20));
+    }
+    for (const auto& f : report.outputs) fmt::print("output: {}\n", f);
+    const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+    fmt::print("lumenrig run: {} unit(s) run, {}\n", to_run, TimeAndMemoryLine(wall));
+    if (!s.ok()) return ReportError("run", s);
+    return 0;
+  };
+}
+
+CommandRegistrar registrar({"run",
+                            "Run every stage (check, normals, matte, assemble, pairs) for every camera of every "
+                            "session; resumable",
+                            60, Setup});
+
+}  // namespace
+}  // namespace lumenrig::cli

@@ -1,0 +1,113 @@
+#pragma once
+/// \file pipeline.h
+/// `lumenrig run`: every stage for every camera of every session, as a TBB
+/// flow graph (check -> normals, matte per camera -> assemble -> pairs),
+/// resumable from content hashes.
+///
+/// Output folder layout (docs/pipeline.md):
+///   <out>/<session>.h5                 ground truth of every camera + QA
+///   <out>/<session>.pairs.h5           training pairs (with --envs)
+///   <out>/<session>/<camera>/*.exr     per-stage maps (normals, albedo, ...)
+///   <out>/<session>/check.json         QA results
+///   <out>/<session>/stamps/*.json      one stamp per finished unit
+///   <out>/.lumenrig-hashes.json        file-hash cache (size + mtime keyed)
+/// A unit is up to date when its stamp's key (hash of stage version, the
+/// options that affect its outputs, its input files' content and its
+/// upstream units' keys) equals the current key and its outputs still hash as
+/// recorded. Threads and memory budget never change outputs, so they are not
+/// part of the key.
+
+#include <cstdint>
+#include <functional>
+#include <memory>
+#include <string>
+#include <vector>
+
+#include <nlohmann/json.hpp>
+
+#include "lumenrig/capture_io/session.h"
+#include "lumenrig/capture_io/status.h"
+
+namespace lumenrig::synth {
+
+enum class StageKind { kCheck, kNormals, kMatte, kAssemble, kPairs };
+const char* StageName(StageKind kind);
+
+/// Everything `lumenrig run` takes. Stage option blocks are JSON objects so
+/// that the part that affects a stage's outputs can be hashed and compared.
+struct RunOptions {
+  std::vector<std::string> sessions;  ///< session.json paths or folders
+  std::string out_dir;
+  std::vector<StageKind> stages = {StageKind::kCheck, StageKind::kNormals, StageKind::kMatte, StageKind::kAssemble,
+                                   StageKind::kPairs};
+  std::string envs_dir;  ///< empty: no pairs stage
+  nlohmann::json check_options = nlohmann::json::object();
+  nlohmann::json normals_options = nlohmann::json::object();
+  nlohmann::json matte_options = nlohmann::json::object();
+  nlohmann::json pairs_options = nlohmann::json::object();
+  int threads = 0;                           ///< 0 = all cores
+  int64_t mem_budget_bytes = int64_t{4} << 30;  ///< shared by every unit in flight
+  bool force = false;                        ///< run later stages despite a QA FAIL
+  bool dry_run = false;
+};
+
+enum class UnitState { kUpToDate, kMissing, kStale, kBlocked };
+
+/// One unit of work: a stage for a session (and camera).
+struct UnitPlan {
+  int session_index = -1;
+  std::string session_id;
+  std::string camera_id;  ///< empty for session-wide stages
+  StageKind stage = StageKind::kCheck;
+  UnitState state = UnitState::kMissing;
+  std::string reason;  ///< why it runs, e.g. "options changed: method"
+  uint64_t key = 0;
+  uint64_t inputs_hash = 0;     ///< combined content hash of the unit's input files
+  uint64_t upstream_hash = 0;   ///< combined keys of the units it derives from
+  nlohmann::json options_slice;  ///< the options that affect its outputs
+  std::vector<int> depends_on;  ///< indices into RunPlan::units
+};
+
+struct RunPlan {
+  std::vector<io::Session> sessions;
+  std::vector<UnitPlan> units;
+  /// Lines "<session> <camera> <stage>: <state> (<reason>)" for --dry-run.
+  std::vector<std::string> Describe() const;
+};
+
+/// Per-stage totals for --stats.
+struct StageStats {
+  StageKind stage = StageKind::kCheck;
+  int units_run = 0;
+  int units_skipped = 0;
+  double wall_s = 0;  ///< summed over the stage's units
+  double cpu_s = 0;   ///< process CPU time while the stage's units ran
+  int64_t peak_rss_bytes = 0;  ///< process peak RSS when the stage's last unit ended
+};
+
+struct RunReport {
+  std::vector<StageStats> stages;
+  std::vector<std::string> outputs;  ///< final files written or kept
+  std::vector<std::string> qa_failed_sessions;
+  double wall_s = 0;
+  int64_t peak_rss_bytes = 0;
+};
+
+/// Progress events for a terminal display or log lines.
+struct RunEvents {
+  std::function<void(const UnitPlan&)> unit_started;
+  std::function<void(const UnitPlan&, const io::Status&, double wall_s)> unit_finished;
+  /// fraction in [0,1] of the current unit (stages that report it)
+  std::function<void(const UnitPlan&, double fraction)> unit_progress;
+};
+
+/// Loads the sessions, computes every unit's key and state. Bad sessions or
+/// options are a BadInput naming the file.
+io::Status PlanRun(const RunOptions& options, RunPlan* plan);
+
+/// Executes the stale and missing units of `plan` on a TBB flow graph.
+/// Returns DataFail when a session's QA failed (and its later stages were
+/// skipped because `force` was off).
+io::Status ExecuteRun(const RunOptions& options, RunPlan* plan, const RunEvents& events, RunReport* report);
+
+}  // namespace lumenrig::synth
