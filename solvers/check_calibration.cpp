@@ -4,6 +4,8 @@
 #include <cmath>
 #include <limits>
 
+#include <Eigen/Geometry>
+
 #include "check_internal.h"
 #include "lumenrig/solvers/light_matrix.h"
 
