@@ -26,6 +26,7 @@ struct CameraContext {
   cv::Mat mask;             // CV_8U, 255 = subject; full resolution
   std::vector<int> grid_x;  // column -> analysis cell column
   std::vector<int> grid_y;  // row -> analysis cell row
+  std::vector<int> row_begin, row_end;  // per row, extent [begin, end) of mask pixels
   int grid_w = 0, grid_h = 0;
   double dark_lum = 0.0;
   Eigen::Vector3d dark_rgb{0, 0, 0};
@@ -154,8 +155,9 @@ void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOp
   const int lpb = std::max(1, info.lines_per_block);
   const int band = std::max(lpb, static_cast<int>(std::lround(options.band_rows / lpb)) * lpb);
   cv::Mat rows;
-  std::vector<float> lum(W);
   std::vector<unsigned char> full_mask_row(W, 255);
+  const int thumb_step = std::max(1, std::min(W / tw, H / th) / 4);
+  const int noise_step = std::max(1, H / 256);
   for (int y0 = 0; y0 < H; y0 += band) {
     const int y1 = std::min(H, y0 + band);
     io::Status st = (*reader)->ReadRows(y0, y1, &rows);
@@ -166,61 +168,77 @@ void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOp
     for (int y = y0; y < y1; ++y) {
       const float* p = rows.ptr<float>(y - y0);
       const unsigned char* m = ctx.mask.empty() ? full_mask_row.data() : ctx.mask.ptr<unsigned char>(y);
-      const int ty = static_cast<int>(static_cast<int64_t>(y) * th / H);
-      double* trow = &tacc[static_cast<size_t>(ty) * tw * 3];
-      int* tcrow = &tcnt[static_cast<size_t>(ty) * tw];
-      const int gy = ctx.grid_y[y];
-      double* grow = &gsum[static_cast<size_t>(gy) * ctx.grid_w];
-      int* gcrow = &gcnt[static_cast<size_t>(gy) * ctx.grid_w];
-      double rr = 0, rg = 0, rb = 0;
-      int64_t rc = 0, rclip = 0;
-      for (int x = 0; x < W; ++x) {
-        float r, g, b;
+      auto rgb = [&](int x, float* r, float* g, float* b) {
         if (nc == 3) {
-          r = p[3 * x];
-          g = p[3 * x + 1];
-          b = p[3 * x + 2];
+          *r = p[3 * x];
+          *g = p[3 * x + 1];
+          *b = p[3 * x + 2];
         } else {
-          r = g = b = p[x];
+          *r = *g = *b = p[x];
         }
-        const float l = Luma(r, g, b);
-        lum[x] = l;
-        double* t = trow + 3 * tx[x];
-        t[0] += r;
-        t[1] += g;
-        t[2] += b;
-        ++tcrow[tx[x]];
-        if (m[x]) {
+      };
+      auto luma = [&](int x) { return nc == 3 ? Luma(p[3 * x], p[3 * x + 1], p[3 * x + 2]) : p[x]; };
+      // Statistics over the mask pixels of this row (its extent precomputed).
+      const int xb = ctx.row_begin[y], xe = ctx.row_end[y];
+      if (xb < xe) {
+        const int gy = ctx.grid_y[y];
+        double* grow = &gsum[static_cast<size_t>(gy) * ctx.grid_w];
+        int* gcrow = &gcnt[static_cast<size_t>(gy) * ctx.grid_w];
+        float rr = 0, rg = 0, rb = 0;
+        int64_t rc = 0, rclip = 0;
+        for (int x = xb; x < xe; ++x) {
+          if (!m[x]) continue;
+          float r, g, b;
+          rgb(x, &r, &g, &b);
+          const float l = Luma(r, g, b);
           rr += r;
           rg += g;
           rb += b;
           ++rc;
-          const bool is_clipped = std::max(r, std::max(g, b)) >= sat;
-          rclip += is_clipped;
-          int bin = static_cast<int>(l * hist_scale);
-          bin = std::min(kHistBins - 1, std::max(0, bin));
+          rclip += std::max(r, std::max(g, b)) >= sat ? 1 : 0;
+          const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale)));
           ++hist[bin];
           const int gx = ctx.grid_x[x];
           grow[gx] += l;
           ++gcrow[gx];
         }
+        sum_r += rr;
+        sum_g += rg;
+        sum_b += rb;
+        count += rc;
+        clipped += rclip;
+        // Noise: horizontal second difference inside the mask, away from
+        // clipping, on every noise_step-th row (plenty of samples).
+        if (y % noise_step == 0) {
+          for (int x = std::max(1, xb); x + 1 < std::min(W, xe + 1); ++x) {
+            if (!(m[x - 1] && m[x] && m[x + 1])) continue;
+            const float a = luma(x - 1), c = luma(x), d = luma(x + 1);
+            if (a < sat && c < sat && d < sat) {
+              sum_abs_d += std::abs(a - 2.0f * c + d);
+              ++n_d;
+            }
+          }
+        }
       }
-      // Noise: horizontal second difference inside the mask, away from clipping.
-      for (int x = 1; x + 1 < W; ++x) {
-        if (m[x - 1] && m[x] && m[x + 1] && lum[x - 1] < sat && lum[x] < sat && lum[x + 1] < sat) {
-          sum_abs_d += std::abs(lum[x - 1] - 2.0f * lum[x] + lum[x + 1]);
-          ++n_d;
+      // Thumbnail from a regular subsample (about 16 samples per thumbnail pixel).
+      if (y % thumb_step == 0) {
+        const int ty = static_cast<int>(static_cast<int64_t>(y) * th / H);
+        double* trow = &tacc[static_cast<size_t>(ty) * tw * 3];
+        int* tcrow = &tcnt[static_cast<size_t>(ty) * tw];
+        for (int x = 0; x < W; x += thumb_step) {
+          float r, g, b;
+          rgb(x, &r, &g, &b);
+          double* t = trow + 3 * tx[x];
+          t[0] += r;
+          t[1] += g;
+          t[2] += b;
+          ++tcrow[tx[x]];
         }
       }
       if (!macc.empty() && y / mf < mh) {
         float* mrow = &macc[static_cast<size_t>(y / mf) * mw];
-        for (int x = 0; x < mw * mf; ++x) mrow[x / mf] += lum[x];
+        for (int x = 0; x < mw * mf; ++x) mrow[x / mf] += luma(x);
       }
-      sum_r += rr;
-      sum_g += rg;
-      sum_b += rb;
-      count += rc;
-      clipped += rclip;
     }
   }
   s->readable = true;
@@ -432,6 +450,20 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
         cs.has_alignment = true;
         cs.align_dx_px = d.x * f;
         cs.align_dy_px = d.y * f;
+      }
+
+      // Extent of the mask on each row (the statistics loop visits only it).
+      ctx.row_begin.assign(ctx.height, 0);
+      ctx.row_end.assign(ctx.height, ctx.width);
+      if (!ctx.mask.empty()) {
+        for (int y = 0; y < ctx.height; ++y) {
+          const unsigned char* m = ctx.mask.ptr<unsigned char>(y);
+          int b = 0, e = ctx.width;
+          while (b < e && !m[b]) ++b;
+          while (e > b && !m[e - 1]) --e;
+          ctx.row_begin[y] = b;
+          ctx.row_end[y] = e;
+        }
       }
 
       // Analysis grid cells: valid when at least half their pixels are subject.
