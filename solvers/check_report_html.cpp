@@ -206,7 +206,7 @@ std::string RatioPlot(const CheckResult& r, int cam, const std::vector<const Fra
 }
 
 std::string DomeMap(const CheckResult& r, int cam, const std::vector<const FrameSummary*>& olat) {
-  SvgPlot plot(600, 330, -180, 180, -90, 90, "azimuth (deg, rig frame, 0 = +z toward the camera side)",
+  SvgPlot plot(1180, 400, -180, 180, -90, 90, "azimuth (deg, rig frame, 0 = +z toward the camera side)",
                "elevation (deg)");
   double emax = 0;
   for (const auto* s : olat) emax = std::max(emax, s->measured);
@@ -215,7 +215,7 @@ std::string DomeMap(const CheckResult& r, int cam, const std::vector<const Frame
     if (d.norm() == 0) continue;
     const double az = std::atan2(d.x(), d.z()) * 180.0 / M_PI;
     const double el = std::asin(std::clamp(d.y(), -1.0, 1.0)) * 180.0 / M_PI;
-    const double t = emax > 0 ? s->measured / emax : 0;
+    const double t = emax > 0 ? std::clamp(s->measured / emax, 0.0, 1.0) : 0.0;
     const bool bad = s->verdict == Verdict::kFail || s->verdict == Verdict::kWarn;
     plot.Raw(fmt::format("<g><title>camera {} light {}: az {} el {}, energy {} of max{}</title>"
                          "<circle cx='{:.1f}' cy='{:.1f}' r='7' fill='{}' stroke='{}' stroke-width='{}'/></g>",
@@ -227,7 +227,7 @@ std::string DomeMap(const CheckResult& r, int cam, const std::vector<const Frame
   std::string legend;
   for (int k = 0; k <= 10; ++k)
     legend += fmt::format("<rect x='{}' y='0' width='16' height='10' fill='{}'/>", 60 + 16 * k, Ramp(std::sqrt(k / 10.0)));
-  plot.Raw(fmt::format("<g transform='translate(0,{})'>{}<text x='56' y='9' class='tick' text-anchor='end'>0</text>"
+  plot.Raw(fmt::format("<g transform='translate(880,{})'>{}<text x='56' y='9' class='tick' text-anchor='end'>0</text>"
                        "<text x='240' y='9' class='tick'>max energy</text></g>",
                        0, legend));
   return plot.Finish();
@@ -250,7 +250,7 @@ std::string TimePlot(const std::vector<TrackingPoint>& t, bool motion, const Che
   }
   const double x1 = t.empty() ? 1 : t.back().after_light;
   const double x0 = t.empty() ? 0 : t.front().after_light;
-  SvgPlot plot(580, 240, x0, std::max(x0 + 1, x1), ymin, ymax, "tracking frame (captured after light id)",
+  SvgPlot plot(575, 240, x0, std::max(x0 + 1, x1), ymin, ymax, "tracking frame (captured after light id)",
                motion ? "subject shift (px)" : "intensity drift (%)");
   std::string pts;
   for (const auto& p : t) {
@@ -399,16 +399,17 @@ std::string RenderCheckReportHtml(const CheckResult& r) {
     h << "<h3>Per-light exposure inside the subject mask (bar = mean, black tick = 99th percentile)</h3>"
       << ExposurePlot(r, static_cast<int>(c), olat);
     h << "<h3>Light energy against the model (dead, weak and hot lights)</h3>" << RatioPlot(r, static_cast<int>(c), olat);
-    h << "<div class='plots'><div><h3>Light energy over the dome</h3>" << DomeMap(r, static_cast<int>(c), olat)
-      << "<p class='note'>Each disc is a light at its calibrated azimuth/elevation, coloured by measured energy; "
-         "flagged lights are ringed.</p></div>";
+    h << "<h3>Light energy over the dome</h3>" << DomeMap(r, static_cast<int>(c), olat)
+      << "<p class='note'>Each disc is a light at its calibrated azimuth/elevation (rig frame), coloured by the "
+         "energy it put on the subject as this camera sees it; flagged lights are ringed in red/amber.</p>";
     if (!cs.tracking.empty()) {
-      h << "<div><h3>Intensity drift over the take</h3>" << TimePlot(cs.tracking, false, r.options)
-        << "<h3>Subject motion over the take</h3>" << TimePlot(cs.tracking, true, r.options) << "</div>";
+      h << "<div class='plots'><div><h3>Intensity drift over the take</h3>" << TimePlot(cs.tracking, false, r.options)
+        << "</div><div><h3>Subject motion over the take</h3>" << TimePlot(cs.tracking, true, r.options)
+        << "</div></div>";
     } else {
-      h << "<div><h3>Drift and motion</h3><p class='note'>No tracking frames listed for this camera.</p></div>";
+      h << "<h3>Drift and motion</h3><p class='note'>No tracking frames listed for this camera.</p>";
     }
-    h << "</div></section>\n";
+    h << "</section>\n";
   }
 
   // Thresholds used.
