@@ -11,6 +11,60 @@
 
 namespace lumenrig::solvers::check_detail {
 
+namespace {
+
+/// Weighted Lucas-Kanade (Gauss-Newton on a pure translation) from `d`:
+/// moved(x + d) ~ reference(x). Returns the weighted mean squared residual.
+double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, cv::Point2d* d) {
+  cv::Mat warped, gx, gy, res;
+  double err = std::numeric_limits<double>::infinity();
+  const double wsum = std::max(1e-12, cv::sum(win)[0]);
+  for (int iter = 0; iter < 30; ++iter) {
+    const cv::Mat m = (cv::Mat_<double>(2, 3) << 1, 0, d->x, 0, 1, d->y);
+    cv::warpAffine(mov, warped, m, mov.size(), cv::INTER_LINEAR | cv::WARP_INVERSE_MAP, cv::BORDER_REPLICATE);
+    cv::Sobel(warped, gx, CV_32F, 1, 0, 3, 1.0 / 8.0);
+    cv::Sobel(warped, gy, CV_32F, 0, 1, 3, 1.0 / 8.0);
+    res = warped - ref;
+    err = cv::sum(win.mul(res.mul(res)))[0] / wsum;
+    const double a = cv::sum(win.mul(gx.mul(gx)))[0], b = cv::sum(win.mul(gx.mul(gy)))[0],
+                 c = cv::sum(win.mul(gy.mul(gy)))[0];
+    const double u = cv::sum(win.mul(gx.mul(res)))[0], v = cv::sum(win.mul(gy.mul(res)))[0];
+    const double det = a * c - b * b;
+    if (!(det > 1e-12 * (a * c + 1e-30))) break;
+    double sx = -(c * u - b * v) / det, sy = -(a * v - b * u) / det;
+    const double step = std::hypot(sx, sy);
+    if (step > 1.0) sx /= step, sy /= step;  // trust region: at most a pixel per step
+    d->x += sx;
+    d->y += sy;
+    if (step < 1e-3) break;
+  }
+  return err;
+}
+
+/// Coarse-to-fine Lucas-Kanade from `start` over a 3-level pyramid.
+double PyramidShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, cv::Point2d start, cv::Point2d* d) {
+  std::vector<cv::Mat> r{ref}, m{mov}, w{win};
+  while (r.size() < 3 && std::min(r.back().cols, r.back().rows) >= 64) {
+    cv::Mat a, b, c;
+    cv::pyrDown(r.back(), a);
+    cv::pyrDown(m.back(), b);
+    cv::resize(w.back(), c, a.size(), 0, 0, cv::INTER_AREA);
+    r.push_back(a);
+    m.push_back(b);
+    w.push_back(c);
+  }
+  const double scale = std::ldexp(1.0, static_cast<int>(r.size()) - 1);
+  *d = cv::Point2d(start.x / scale, start.y / scale);
+  double err = 0;
+  for (int level = static_cast<int>(r.size()) - 1; level >= 0; --level) {
+    err = RefineShift(r[level], m[level], w[level], d);
+    if (level > 0) *d *= 2.0;
+  }
+  return err;
+}
+
+}  // namespace
+
 cv::Point2d EstimateShift(const cv::Mat& reference, const cv::Mat& moved, const cv::Mat& window, double* response) {
   cv::Mat win = window;
   if (win.empty()) cv::createHanningWindow(win, reference.size(), CV_32F);
@@ -22,8 +76,27 @@ cv::Point2d EstimateShift(const cv::Mat& reference, const cv::Mat& moved, const 
     return out;
   };
   double r = 0;
-  const cv::Point2d d = cv::phaseCorrelate(centred(reference), centred(moved), win, &r);
+  const cv::Point2d phase = cv::phaseCorrelate(centred(reference), centred(moved), win, &r);
   if (response) *response = r;
+
+  // Phase correlation whitens the spectrum, so on smooth content (painted
+  // walls, plaster) noise sets its error. Refine with coarse-to-fine weighted
+  // Lucas-Kanade on lightly smoothed, gain/offset-normalised images, started
+  // from zero and from the phase-correlation peak; keep the better fit.
+  auto normalised = [&](const cv::Mat& img) {
+    cv::Mat s;
+    cv::GaussianBlur(img, s, cv::Size(0, 0), 1.0);
+    cv::Scalar mean, stddev;
+    cv::meanStdDev(s, mean, stddev);
+    s = (s - mean[0]) / std::max(1e-12, stddev[0]);
+    return s;
+  };
+  const cv::Mat ref = normalised(reference), mov = normalised(moved);
+  cv::Point2d from_zero, from_phase;
+  const double e0 = PyramidShift(ref, mov, win, cv::Point2d(0, 0), &from_zero);
+  const double e1 = PyramidShift(ref, mov, win, phase, &from_phase);
+  cv::Point2d d = e1 < e0 ? from_phase : from_zero;
+  if (!std::isfinite(d.x) || !std::isfinite(d.y)) d = phase;
   return d;
 }
 
