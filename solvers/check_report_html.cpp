@@ -92,7 +92,7 @@ class SvgPlot {
   SvgPlot(int width, int height, double x0, double x1, double y0, double y1, const std::string& xlabel,
           const std::string& ylabel)
       : w_(width), h_(height), x0_(x0), x1_(x1 > x0 ? x1 : x0 + 1), y0_(y0), y1_(y1 > y0 ? y1 : y0 + 1) {
-    out_ << fmt::format("<svg xmlns='http://www.w3.org/2000/svg' width='{}' height='{}' viewBox='0 0 {} {}' "
+    out_ << fmt::format("<svg width='{}' height='{}' viewBox='0 0 {} {}' "
                         "class='plot'>",
                         w_, h_, w_, h_);
     out_ << fmt::format("<rect x='{}' y='{}' width='{}' height='{}' fill='#fff' stroke='#bbb'/>", kL, kT, PlotW(),
