@@ -82,7 +82,7 @@ cv::Mat BackgroundWindow(const cv::Mat& mask8, cv::Size size) {
   if (mask8.empty()) return hann;
   cv::Mat m;
   cv::resize(mask8, m, size, 0, 0, cv::INTER_AREA);
-  const int r = std::max(2, std::max(size.width, size.height) / 64);
+  const int r = std::max(3, std::max(size.width, size.height) / 32);
   cv::dilate(m, m, cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(2 * r + 1, 2 * r + 1)));
   cv::Mat subject;
   m.convertTo(subject, CV_32F, 1.0 / 255.0);
@@ -446,7 +446,14 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
         cv::Mat back_lum = Luminance(backlit);
         const int f = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / 2048.0)));
         cv::Mat a = ReduceBy(plate_lum, f), bb = ReduceBy(back_lum, f);
-        const cv::Point2d d = EstimateShift(a, bb, BackgroundWindow(ctx.mask, a.size()));
+        // The subject only darkens the backdrop in the backlit frame: pixels
+        // below 80% of the clean plate (partial coverage, hair) are left out
+        // too, with a 2 px margin.
+        cv::Mat occluded = bb < 0.8 * a;
+        cv::dilate(occluded, occluded, cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(5, 5)));
+        cv::Mat keep;
+        cv::Mat(occluded == 0).convertTo(keep, CV_32F, 1.0 / 255.0);
+        const cv::Point2d d = EstimateShift(a, bb, BackgroundWindow(ctx.mask, a.size()).mul(keep));
         cs.has_alignment = true;
         cs.align_dx_px = d.x * f;
         cs.align_dy_px = d.y * f;

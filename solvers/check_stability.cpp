@@ -86,17 +86,42 @@ cv::Point2d EstimateShift(const cv::Mat& reference, const cv::Mat& moved, const 
   auto normalised = [&](const cv::Mat& img) {
     cv::Mat s;
     cv::GaussianBlur(img, s, cv::Size(0, 0), 1.0);
-    cv::Scalar mean, stddev;
-    cv::meanStdDev(s, mean, stddev);
-    s = (s - mean[0]) / std::max(1e-12, stddev[0]);
-    return s;
+    // Statistics under the window only: what it masks out (a subject
+    // present in one frame only) must not change the normalisation.
+    const double wsum = std::max(1e-12, cv::sum(win)[0]);
+    const double mean = cv::sum(s.mul(win))[0] / wsum;
+    cv::Mat c = s - mean;
+    const double var = cv::sum(c.mul(c).mul(win))[0] / wsum;
+    return cv::Mat(c / std::sqrt(std::max(1e-24, var)));
   };
   const cv::Mat ref = normalised(reference), mov = normalised(moved);
   cv::Point2d from_zero, from_phase;
   const double e0 = PyramidShift(ref, mov, win, cv::Point2d(0, 0), &from_zero);
   const double e1 = PyramidShift(ref, mov, win, phase, &from_phase);
   cv::Point2d d = e1 < e0 ? from_phase : from_zero;
-  if (!std::isfinite(d.x) || !std::isfinite(d.y)) d = phase;
+  if (!std::isfinite(d.x) || !std::isfinite(d.y)) return phase;
+  // Robust polish: Cauchy weights on the residual (scale 3 x 1.4826 MAD) so
+  // what differs between the two frames (a silhouette, hair, a moved
+  // shadow) does not bias the shift.
+  for (int round = 0; round < 3; ++round) {
+    cv::Mat warped;
+    const cv::Mat m = (cv::Mat_<double>(2, 3) << 1, 0, d.x, 0, 1, d.y);
+    cv::warpAffine(mov, warped, m, mov.size(), cv::INTER_LINEAR | cv::WARP_INVERSE_MAP, cv::BORDER_REPLICATE);
+    const cv::Mat res = cv::abs(warped - ref);
+    std::vector<float> vals;
+    for (int y = 0; y < res.rows; ++y)
+      for (int x = 0; x < res.cols; ++x)
+        if (win.at<float>(y, x) > 1e-3f) vals.push_back(res.at<float>(y, x));
+    if (vals.size() < 16) break;
+    std::nth_element(vals.begin(), vals.begin() + vals.size() / 2, vals.end());
+    const double scale = std::max(1e-6, 3.0 * 1.4826 * vals[vals.size() / 2]);
+    cv::Mat q = res / scale;
+    cv::Mat robust = 1.0 / (1.0 + q.mul(q));
+    cv::Point2d next = d;
+    RefineShift(ref, mov, win.mul(robust), &next);
+    if (!std::isfinite(next.x) || !std::isfinite(next.y)) break;
+    d = next;
+  }
   return d;
 }
 

@@ -239,7 +239,7 @@ TEST(SessionCheck, CameraMovedBetweenCleanPlateAndBacklitIsNamed) {
   const CheckLine* l = Line(c.result, "matting.alignment");
   ASSERT_NE(l, nullptr);
   EXPECT_EQ(l->verdict, Verdict::kFail) << Describe(c.result);
-  EXPECT_NEAR(l->value, 2.0, 0.3);  // the injected shift (simulator.h SimFaults::plate_shift_px)
+  EXPECT_NEAR(l->value, 2.0, 0.15);  // the injected shift (simulator.h SimFaults::plate_shift_px)
   EXPECT_TRUE(MentionsAll(*l, {"cam00", "backlit"})) << Describe(c.result);
 }
 
