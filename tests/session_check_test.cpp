@@ -298,7 +298,9 @@ TEST(SessionCheck, CalibrationConditionNumberMatchesClosedForm) {
       EXPECT_NEAR(l.value, 1.0, 1e-9);
       EXPECT_EQ(l.verdict, Verdict::kPass);
     }
-    if (l.key == "calibration.directions" || l.key == "calibration.duplicates") EXPECT_EQ(l.verdict, Verdict::kPass);
+    if (l.key == "calibration.directions" || l.key == "calibration.duplicates") {
+      EXPECT_EQ(l.verdict, Verdict::kPass);
+    }
   }
   // A ring of N evenly spaced lights at elevation e: L^T L = diag(N cos^2 e / 2,
   // N sin^2 e, N cos^2 e / 2), so kappa = cos e / (sqrt 2 sin e) for e < 35.26 deg.
