@@ -152,7 +152,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
           const double cij = (v.row(i) * (cf.iota[i] / cf.iota[j]) - pr.row(j)).squaredNorm();
           const double cji = (v.row(j) * (cf.iota[j] / cf.iota[i]) - pr.row(i)).squaredNorm();
           const double gain = total - (cij + cji);
-          if (gain > options.swap_gain_fraction * total) cands.push_back({gain / total, i, j});
+          // Both frames must be explained better by the other's direction
+          // (a dead and a hot light close together are not a swap).
+          const double keep = 1.0 - options.swap_gain_fraction;
+          if (cij < keep * own[i] && cji < keep * own[j]) cands.push_back({gain / total, i, j});
         }
       }
       std::sort(cands.begin(), cands.end(), [](const Cand& a, const Cand& b) {

@@ -44,7 +44,7 @@ const std::vector<ThresholdSpec>& ThresholdTable() {
       {"lights.min_predicted_fraction", &O::min_predicted_fraction, "ratio",
        "lights predicted dimmer than this fraction of the brightest are not judged (subject barely lit)", kPractice},
       {"lights.swap_gain_fraction", &O::swap_gain_fraction, "ratio",
-       "exchanging two frames must cut their Lambertian residual by this fraction to report a swap", kPractice},
+       "exchanging two frames must cut each one's Lambertian residual by this fraction to report a swap", kPractice},
       {"lights.swap_min_angle_deg", &O::swap_min_angle_deg, "deg", "swaps between lights closer than this are not reported", kPractice},
       {"lights.colour_warn_pct", &O::colour_warn_pct, "%", "channel deviation from the camera's typical colour: WARN", kPractice},
       {"lights.colour_fail_pct", &O::colour_fail_pct, "%", "channel deviation from the camera's typical colour: FAIL", kPractice},
