@@ -159,6 +159,9 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
       return full.clone();
     };
     const cv::Mat ref = view(first);
+    // Drift from the energy over the subject's box (the mask dilated), so a
+    // subject that moves stays inside what is summed.
+    const double first_energy = cv::sum(ref)[0];
     if (!have_window || window.size() != ref.size()) window.release();
     cs.tracking.clear();
     for (const FrameSummary* s : tr) {
@@ -166,7 +169,9 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
       t.after_light = s->light;
       t.drift_pct = 100.0 * (s->mean / first.mean - 1.0);
       if (s != tr[0] && s->motion_w == first.motion_w && s->motion_h == first.motion_h) {
-        const cv::Point2d d = EstimateShift(ref, view(*s), window);
+        const cv::Mat cur = view(*s);
+        if (first_energy > 0) t.drift_pct = 100.0 * (cv::sum(cur)[0] / first_energy - 1.0);
+        const cv::Point2d d = EstimateShift(ref, cur, window);
         t.shift_x_px = d.x * cs.motion_factor;
         t.shift_y_px = d.y * cs.motion_factor;
       }

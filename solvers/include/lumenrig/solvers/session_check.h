@@ -45,7 +45,7 @@ struct CheckOptions {
   double weak_fail_ratio = 0.3;         ///< ... -> FAIL (dead light)
   double hot_warn_ratio = 1.4;          ///< measured / predicted energy above this -> WARN
   double hot_fail_ratio = 2.5;          ///< ... -> FAIL
-  double min_predicted_fraction = 0.1;  ///< lights predicted below this fraction of the brightest are not judged
+  double min_predicted_fraction = 0.03; ///< lights predicted below this fraction of the brightest are not judged
   double swap_gain_fraction = 0.5;      ///< swapping two frames must cut each one's model residual by this fraction
   double swap_min_angle_deg = 20.0;     ///< lights closer than this are not reported as swapped
   double colour_warn_pct = 5.0;         ///< per-channel deviation from the camera's typical colour -> WARN
