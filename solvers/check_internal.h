@@ -32,7 +32,7 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
 cv::Point2d EstimateShift(const cv::Mat& reference, const cv::Mat& moved, const cv::Mat& window,
                           double* response = nullptr);
 
-void CheckCompleteness(const io::Session& session, const CheckResult& result, CheckLine* line);
+void CheckCompleteness(const io::Session& session, CheckResult* result, CheckLine* line);
 void CheckExposure(const io::Session& session, const CheckOptions& options, CheckResult* result,
                    std::vector<CheckLine>* lines);
 void CheckLights(const io::Session& session, const CheckOptions& options, CheckResult* result,

@@ -294,6 +294,7 @@ td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 .sheet{display:flex;flex-wrap:wrap;gap:6px}
 .thumb{width:100px;border:3px solid #d0d4da;border-radius:4px;background:#222;position:relative}
 .thumb img{display:block;width:100%;image-rendering:auto}
+.thumb .missing{height:70px;color:#ff8a80;font-size:12px;display:flex;align-items:center;justify-content:center}
 .thumb .cap{background:#fff;color:#1d232b;font-size:11px;padding:1px 4px;display:flex;justify-content:space-between}
 .thumb.warn{border-color:#e0a000}.thumb.fail{border-color:#d32f2f}
 .thumb .tag{position:absolute;top:2px;left:2px;font-size:10px;font-weight:700;color:#fff;padding:0 3px;border-radius:2px}
@@ -377,13 +378,23 @@ std::string RenderCheckReportHtml(const CheckResult& r) {
     h << "</p>\n";
 
     h << "<h3>Contact sheet: every OLAT frame (full scale = white; red/amber border = flagged)</h3><div class='sheet'>";
-    for (const auto* s : olat) {
+    // Tiles by light id, with a placeholder for every light without a frame.
+    std::vector<std::pair<int, const FrameSummary*>> tiles;
+    for (const auto* s : olat) tiles.push_back({s->light, s});
+    for (int id : cs.missing_lights) tiles.push_back({id, nullptr});
+    std::stable_sort(tiles.begin(), tiles.end(), [](const auto& a, const auto& b) { return a.first < b.first; });
+    for (const auto& [id, s] : tiles) {
+      if (s == nullptr) {
+        h << "<div class='thumb fail'><div class='missing'>no frame</div><span class='tag'>missing</span>"
+          << "<div class='cap'><span>L" << id << "</span><span></span></div></div>";
+        continue;
+      }
       const char* cls = s->verdict == Verdict::kFail ? " fail" : (s->verdict == Verdict::kWarn ? " warn" : "");
       h << "<div class='thumb" << cls << "' title='" << Esc(s->path) << "'>";
       if (!s->thumbnail_png.empty()) {
         h << "<img alt='light " << s->light << "' src='data:image/png;base64," << Base64(s->thumbnail_png) << "'>";
       } else {
-        h << "<div style='height:75px;color:#f66;font-size:11px;padding:4px'>missing or unreadable</div>";
+        h << "<div class='missing'>unreadable</div>";
       }
       if (s->verdict == Verdict::kFail || s->verdict == Verdict::kWarn) {
         std::string tag = s->flag;

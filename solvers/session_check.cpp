@@ -43,7 +43,8 @@ std::string Num(double value, int decimals) {
   return s;
 }
 
-void CheckCompleteness(const io::Session& session, const CheckResult& result, CheckLine* line) {
+void CheckCompleteness(const io::Session& session, CheckResult* result_out, CheckLine* line) {
+  const CheckResult& result = *result_out;
   int expected = 0, good = 0;
   for (size_t c = 0; c < session.cameras.size(); ++c) {
     const io::Camera& cam = session.cameras[c];
@@ -52,6 +53,7 @@ void CheckCompleteness(const io::Session& session, const CheckResult& result, Ch
     for (const auto& light : session.rig.lights) {
       ++expected;
       if (slots.count(light.id) == 0) {
+        result_out->cameras[c].missing_lights.push_back(light.id);
         Finding f;
         f.verdict = Verdict::kFail;
         f.camera = cam.id;
@@ -145,7 +147,7 @@ io::Status CheckSession(const io::Session& session, const CheckOptions& options_
   CheckLine integrity = check_detail::MakeLine("completeness", "Every light has a readable OLAT frame per camera",
                                                "problems", std::numeric_limits<double>::quiet_NaN(), 0.0);
   LUMENRIG_RETURN_IF_ERROR(check_detail::ScanSession(session, options_in, result, &integrity, threads));
-  check_detail::CheckCompleteness(session, *result, &integrity);
+  check_detail::CheckCompleteness(session, result, &integrity);
 
   std::vector<CheckLine> lines;
   lines.push_back(std::move(integrity));

@@ -172,6 +172,7 @@ struct CameraSummary {
   bool has_alignment = false;
   double align_dx_px = 0.0, align_dy_px = 0.0;  ///< backlit relative to clean plate
   std::vector<TrackingPoint> tracking;
+  std::vector<int> missing_lights;  ///< rig lights without an OLAT frame for this camera
   /// Subject motion window at the tracking frames' reduced resolution:
   /// factor, crop (x, y, w, h) and the weights over the crop (w x h).
   int motion_factor = 1;
