@@ -5,6 +5,7 @@
 #include <chrono>
 #include <cmath>
 #include <filesystem>
+#include <functional>
 #include <memory>
 
 #include <fmt/format.h>
@@ -219,7 +220,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
                 : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
   const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
   const int64_t integrate_bytes = options.integrate_depth ? fixed + px * kIntegrationBytesPerPixel : 0;
-  const int64_t band_budget = options.mem_budget_bytes - fixed - reader_bytes;
+  // 10% of what is left is kept as slack for allocator and library overheads.
+  const int64_t band_budget = (options.mem_budget_bytes - fixed - reader_bytes) / 10 * 9;
   int64_t rows = band_budget > 0 ? band_budget / row_bytes : 0;
   if (keep_open) rows = rows / lpb * lpb;
   rows = std::min<int64_t>(rows, height);
@@ -412,7 +414,7 @@ cv::Mat NormalsPreview(const NormalsResult& r) {
 }
 
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
-                               const std::map<std::string, std::string>& provenance, bool overwrite) {
+                               const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
   const auto names = NormalsOutputNames(result);
   for (const auto& name : names) LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
@@ -425,35 +427,54 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
   o.attributes["lumenrig.method"] = PsMethodName(result.method);
   o.attributes["lumenrig.lights"] = std::to_string(result.lights);
   o.attributes["lumenrig.frame"] = "camera: +x right, +y up, +z toward the viewer";
-  auto path = [&](const char* name) { return (fs::path(out_dir) / name).string(); };
-  {
+  auto path = [&](const std::string& name) { return (fs::path(out_dir) / name).string(); };
+  // One job per file; files are compressed concurrently (each written to a
+  // temporary name and renamed, io::WriteExr / io::WritePng).
+  std::vector<std::function<io::Status()>> jobs;
+  jobs.push_back([&] {
     io::ExrWriteOptions on = o;
     on.channel_names = {"R", "G", "B"};
     on.attributes["lumenrig.content"] = "unit normal nx,ny,nz in R,G,B; 0 where unsolved or outside the mask";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("normals.exr"), result.normals, on));
-  }
-  {
+    return io::WriteExr(path("normals.exr"), result.normals, on);
+  });
+  jobs.push_back([&] {
     io::ExrWriteOptions oa = o;
     oa.attributes["lumenrig.content"] = "diffuse albedo, linear RGB (Lambertian reflectance 0..1)";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("albedo.exr"), result.albedo, oa));
-  }
-  {
+    return io::WriteExr(path("albedo.exr"), result.albedo, oa);
+  });
+  jobs.push_back([&] {
     io::ExrWriteOptions oc = o;
     oc.attributes["lumenrig.content"] =
         "confidence 0..1 from inlier count, light-matrix conditioning and residual; 0 where the solve failed";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("confidence.exr"), result.confidence, oc));
-  }
+    return io::WriteExr(path("confidence.exr"), result.confidence, oc);
+  });
   if (!result.depth.depth.empty()) {
-    io::ExrWriteOptions od = o;
-    od.attributes["lumenrig.depth_unit"] = result.depth.unit;
-    od.attributes["lumenrig.depth_method"] = result.depth.method;
-    od.attributes["lumenrig.content"] =
-        result.depth.unit == "metres"
-            ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
-            : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("depth.exr"), result.depth.depth, od));
+    jobs.push_back([&] {
+      io::ExrWriteOptions od = o;
+      od.attributes["lumenrig.depth_unit"] = result.depth.unit;
+      od.attributes["lumenrig.depth_method"] = result.depth.method;
+      od.attributes["lumenrig.content"] =
+          result.depth.unit == "metres"
+              ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
+              : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
+      return io::WriteExr(path("depth.exr"), result.depth.depth, od);
+    });
   }
-  return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite);
+  jobs.push_back([&] { return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite); });
+  std::vector<io::Status> status(jobs.size());
+  io::ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = jobs[static_cast<size_t>(j)]();
+  });
+  for (const auto& st : status) {
+    if (st.ok()) continue;
+    // No partial output: remove what this call wrote.
+    for (size_t j = 0; j < status.size(); ++j) {
+      std::error_code ec;
+      if (status[j].ok()) fs::remove(path(names[j]), ec);
+    }
+    return st;
+  }
+  return io::Status::Ok();
 }
 
 }  // namespace lumenrig::solvers
