@@ -75,6 +75,7 @@ int RunNormals(const NormalsArgs& a) {
                                : "",
              write_s);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  fmt::print("cpu time: read {:.2f} s, solve {:.2f} s\n", result.read_cpu_seconds, result.solve_cpu_seconds);
   fmt::print("normals: wall {:.2f} s, peak RSS {:.0f} MiB\n", wall, PeakRssMib());
   return 0;
 }

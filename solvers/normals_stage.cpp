@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <ctime>
 #include <cmath>
 #include <filesystem>
 #include <functional>
@@ -27,6 +28,13 @@ constexpr int64_t kBaselineBytes = 64ll << 20;  // libraries, code, allocator sl
 constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex) or Poisson
 
 double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::duration<double>(b - a).count(); }
+
+/// CPU time of the whole process (all threads), seconds.
+double ProcessCpuSeconds() {
+  timespec ts{};
+  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
+}
 
 std::string Mib(int64_t bytes) { return fmt::format("{:.0f} MiB", bytes / 1048576.0); }
 
@@ -259,6 +267,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const bool single_band = rows >= height;
   const int iterations = near ? options.near_field_max_iterations : 1;
   out->read_seconds = out->solve_seconds = out->integrate_seconds = 0;
+  out->read_cpu_seconds = out->solve_cpu_seconds = 0;
 
   for (int iter = 0; iter < iterations; ++iter) {
     for (int y0 = 0; y0 < height; y0 += static_cast<int>(rows)) {
@@ -267,6 +276,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       // 1. Read and normalise every frame's rows [y0, y1).
       if (iter == 0 || !single_band) {
         const auto t0 = Clock::now();
+        const double c0 = ProcessCpuSeconds();
         if (dark_reader) LUMENRIG_RETURN_IF_ERROR(dark_reader->ReadRows(y0, y1, &dark_band));
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
@@ -304,9 +314,11 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         });
         for (const auto& s : errors) LUMENRIG_RETURN_IF_ERROR(s);
         out->read_seconds += Seconds(t0, Clock::now());
+        out->read_cpu_seconds += ProcessCpuSeconds() - c0;
       }
       // 2. Solve the band in fixed tiles of pixels.
       const auto t1 = Clock::now();
+      const double c1 = ProcessCpuSeconds();
       const int64_t band_px = static_cast<int64_t>(band_rows) * width;
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
@@ -324,6 +336,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
       });
       out->solve_seconds += Seconds(t1, Clock::now());
+      out->solve_cpu_seconds += ProcessCpuSeconds() - c1;
     }
     if (iter == 0) {
       bool all_zero = true;

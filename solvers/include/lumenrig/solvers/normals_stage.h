@@ -55,7 +55,8 @@ struct NormalsResult {
   std::vector<int> all_zero_lights;  ///< lights whose frame is zero everywhere (warning)
   int near_field_iterations = 0;
   double near_field_change_deg = 0.0;
-  double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;
+  double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;  ///< wall
+  double read_cpu_seconds = 0, solve_cpu_seconds = 0;  ///< process CPU time (all threads)
 };
 
 /// Solves `camera_id` ("" = the first camera) of `session`.
