@@ -305,11 +305,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
               errors[static_cast<size_t>(i)] = s;
               continue;
             }
-            NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
-            double lo = 0, hi = 0;
-            cv::minMaxIdx(view.reshape(1), &lo, &hi);
-            frame_max[static_cast<size_t>(i)] =
-                std::max(frame_max[static_cast<size_t>(i)], static_cast<float>(std::max(std::abs(lo), std::abs(hi))));
+            const float largest = NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
+            frame_max[static_cast<size_t>(i)] = std::max(frame_max[static_cast<size_t>(i)], largest);
           }
         });
         for (const auto& s : errors) LUMENRIG_RETURN_IF_ERROR(s);
