@@ -132,6 +132,10 @@ int RunDemo(const DemoArgs& a) {
   fmt::print("\ndemo outputs ({}):\n", a.out);
   fmt::print("  session (simulated take):   {}/session.json\n", session_dir);
   fmt::print("  ground truth of the take:   {}/truth/\n", session_dir);
+  std::ifstream qa(session_out + "/check/check.json");
+  const auto qa_json = nlohmann::json::parse(qa, nullptr, false);
+  fmt::print("  session check verdict:      {}\n",
+             qa_json.is_discarded() ? "?" : qa_json.value("verdict", std::string("?")));
   fmt::print("  session check report:       {}/check/check_report.html\n", session_out);
   fmt::print("  session check JSON:         {}/check/check.json\n", session_out);
   fmt::print("  normals, albedo, depth:     {}/normals/ (normals_preview.png)\n", cam_dir);

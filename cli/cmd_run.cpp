@@ -10,6 +10,7 @@
 
 #include "command.h"
 #include "lumenrig/capture_io/parallel.h"
+#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/synth/pipeline.h"
 
 namespace lumenrig::cli {
@@ -191,8 +192,8 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
     o.shard_count = shard.size();
     io::Status s = ParseStages(args->stages, &o.stages);
     if (!s.ok()) return ReportError("run", s);
-    auto budget = ParseByteSize(args->mem_budget, "--mem-budget");
-    if (!budget.ok()) return ReportError("run", budget.status());
+    auto budget = solvers::ParseByteSize(args->mem_budget);
+    if (!budget.ok()) return ReportError("run", budget.status().WithPrefix("--mem-budget"));
     o.mem_budget_bytes = *budget;
     o.normals_options = {{"method", args->normals_method}};
     o.matte_options = {{"method", args->matte_method}};

@@ -42,10 +42,6 @@ bool UseColor();
 /// True when stderr is a terminal (progress displays go there).
 bool StderrIsTerminal();
 
-/// Parses a byte size such as "512M", "4G", "1.5GiB" or "1073741824".
-/// Suffixes K, M, G, T are binary (powers of 1024), with optional "B"/"iB".
-io::Expected<int64_t> ParseByteSize(const std::string& text, const std::string& option_name);
-
 /// "3.2 s, peak RSS 812 MiB": the final line every long stage prints.
 std::string TimeAndMemoryLine(double wall_s);
 

@@ -31,33 +31,6 @@ bool UseColor() {
 
 bool StderrIsTerminal() { return isatty(fileno(stderr)) != 0; }
 
-io::Expected<int64_t> ParseByteSize(const std::string& text, const std::string& option_name) {
-  size_t used = 0;
-  double value = 0;
-  try {
-    value = std::stod(text, &used);
-  } catch (const std::exception&) {
-    return io::Status::BadInput(fmt::format("{}: \"{}\" is not a size (examples: 512M, 4G)", option_name, text));
-  }
-  std::string suffix = text.substr(used);
-  for (const char* tail : {"iB", "B"}) {
-    const std::string t(tail);
-    if (suffix.size() >= t.size() && suffix.compare(suffix.size() - t.size(), t.size(), t) == 0) {
-      suffix.resize(suffix.size() - t.size());
-      break;
-    }
-  }
-  double scale = 1;
-  if (suffix == "K" || suffix == "k") scale = 1024.0;
-  else if (suffix == "M" || suffix == "m") scale = 1024.0 * 1024;
-  else if (suffix == "G" || suffix == "g") scale = 1024.0 * 1024 * 1024;
-  else if (suffix == "T" || suffix == "t") scale = 1024.0 * 1024 * 1024 * 1024;
-  else if (!suffix.empty())
-    return io::Status::BadInput(fmt::format("{}: unknown size suffix in \"{}\" (use K, M, G or T)", option_name, text));
-  if (!(value > 0)) return io::Status::BadInput(fmt::format("{}: size must be positive, got \"{}\"", option_name, text));
-  return static_cast<int64_t>(value * scale);
-}
-
 std::string TimeAndMemoryLine(double wall_s) {
   rusage ru{};
   getrusage(RUSAGE_SELF, &ru);
