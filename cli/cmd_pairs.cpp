@@ -66,6 +66,12 @@ CommandRegistrar reg({"pairs", "Write relit training pairs (lumenrig.pairs/1 HDF
                                         "Phong exponents of the specular light maps");
                         sub->add_option("--target-luminance", a->o.target_luminance,
                                         "Each map is normalised to this mean BT.709 luminance");
+                        sub->add_option("--fov-deg", a->o.background_fov_deg,
+                                        "Background view: horizontal field of view (0 = the camera's intrinsics)");
+                        sub->add_option("--yaw-deg", a->o.background_yaw_deg,
+                                        "Background view: yaw drawn uniformly in +-this (degrees)");
+                        sub->add_option("--pitch-deg", a->o.background_pitch_deg,
+                                        "Background view: pitch drawn uniformly in +-this (degrees)");
                         sub->add_option("--mem-budget", a->mem_budget, "Memory budget (e.g. 1G, 512M)");
                         sub->add_flag("--resume", a->o.resume, "Continue an interrupted run (same options)");
                         sub->add_flag("--force", a->o.force, "Replace an existing output");

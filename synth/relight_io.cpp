@@ -67,6 +67,7 @@ class DiskOlatSource : public OlatSource {
   int width() const override { return width_; }
   int height() const override { return height_; }
   const std::vector<int>& light_index() const override { return light_index_; }
+  int64_t overhead_bytes() const override { return overhead_; }
 
   io::Status ReadBand(int y0, int y1, int threads, std::vector<cv::Mat>* bands) override {
     const int n = static_cast<int>(readers_.size());
@@ -108,6 +109,8 @@ class DiskOlatSource : public OlatSource {
       if (info.channels != 3) {
         return io::Status::BadInput(fmt::format("{}: relighting needs RGB frames, found {} channel(s)", f.path, info.channels));
       }
+      // Decoder state per frame: about two line blocks of float RGB.
+      src->overhead_ += int64_t{2} * std::max(1, info.lines_per_block) * info.width * 3 * 4 + (64 << 10);
       src->readers_.push_back(std::move(*r));
       src->light_index_.push_back(li);
     }
@@ -130,6 +133,7 @@ class DiskOlatSource : public OlatSource {
   cv::Mat dark_band_;
   std::vector<int> light_index_;
   int width_ = 0, height_ = 0;
+  int64_t overhead_ = 0;
 };
 
 }  // namespace

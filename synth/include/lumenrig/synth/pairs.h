@@ -57,11 +57,14 @@ struct PairsOptions {
   int64_t count = 0;                  ///< samples to write
   uint64_t seed = 0;
   int width = 256, height = 256;      ///< output size (centre crop to aspect, then area resize)
-  int batch_size = 8;                 ///< samples per stack pass (part of the result: fixed, recorded)
+  int batch_size = 16;                ///< samples per stack pass (part of the result: fixed, recorded)
   std::vector<double> specular_exponents{1, 16, 32, 64};
   double target_luminance = 0.5;      ///< each map normalised to this mean BT.709 luminance
   double background_yaw_deg = 25.0;   ///< background view yaw drawn in +-this
   double background_pitch_deg = 8.0;  ///< background view pitch drawn in +-this
+  /// Horizontal field of view of the background view; 0 = the camera's own
+  /// intrinsics (then 40 deg when a camera has none).
+  double background_fov_deg = 0.0;
   CameraSimOptions camera_sim;
   LightWeightOptions weights;
   int64_t mem_budget_bytes = int64_t{1} << 30;

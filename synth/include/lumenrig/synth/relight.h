@@ -87,6 +87,9 @@ class OlatSource {
   /// Rig light index (into rig.lights) of each frame.
   virtual const std::vector<int>& light_index() const = 0;
   int count() const { return static_cast<int>(light_index().size()); }
+  /// Memory the source holds besides the bands it returns (decoder buffers);
+  /// RelightBatch takes it out of the budget.
+  virtual int64_t overhead_bytes() const { return 0; }
   /// Rows [y0, y1) of every frame into (*bands)[i] (CV_32FC3).
   virtual io::Status ReadBand(int y0, int y1, int threads, std::vector<cv::Mat>* bands) = 0;
 };
