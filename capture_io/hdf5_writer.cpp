@@ -444,9 +444,16 @@ Status H5Writer::AppendFloat(const std::string& name, const float* data, uint64_
     // even; out-of-range values become +-inf) and write with the file type.
     const uint64_t n = count * Product((*found)->spec.sample_shape);
     if (n == 0) return Status::Ok();
-    cv::Mat halves;
-    cv::Mat(1, static_cast<int>(n), CV_32F, const_cast<float*>(data)).convertTo(halves, CV_16F);
-    return impl_->Append(name, -1, halves.data, count, H5Type::kFloat16);
+    // Row of at most 2^30 elements per cv::Mat (int column count).
+    constexpr uint64_t kRow = uint64_t{1} << 30;
+    const uint64_t rows = (n + kRow - 1) / kRow;
+    std::vector<uint16_t> halves(n);
+    for (uint64_t r = 0; r < rows; ++r) {
+      const uint64_t begin = r * kRow, len = std::min(kRow, n - begin);
+      cv::Mat dst(1, static_cast<int>(len), CV_16F, halves.data() + begin);
+      cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(data + begin)).convertTo(dst, CV_16F);
+    }
+    return impl_->Append(name, -1, halves.data(), count, H5Type::kFloat16);
   }
   return impl_->Append(name, H5T_NATIVE_FLOAT, data, count, H5Type::kFloat32, H5Type::kFloat16);
 }

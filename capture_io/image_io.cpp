@@ -52,12 +52,6 @@ const char* FormatName(FileFormat format) {
 
 namespace {
 
-/// Applies sRGB decoding and black-level subtraction to a CV_32F band.
-void ApplyDecode(const DecodeOptions& options, cv::Mat* band) {
-  if (options.encoding == Encoding::kSrgb) SrgbToLinearInPlace(band);
-  if (options.black_level != 0.0f) *band -= cv::Scalar::all(options.black_level);
-}
-
 Status FileMissing(const std::string& path) {
   std::error_code ec;
   if (!fs::exists(path, ec)) return Status::BadInput(fmt::format("{}: file not found", path));
@@ -193,7 +187,7 @@ class ExrBandReader : public BandReader {
       return Status::BadInput(fmt::format("{}: corrupt or truncated OpenEXR data in rows {}..{} ({})", path_, y0,
                                           y1 - 1, FirstLine(e.what())));
     }
-    ApplyDecode(options_, out);
+    ApplyDecodeOptions(options_, out);
     return Status::Ok();
   }
 
@@ -243,7 +237,7 @@ class WholeImageBandReader : public BandReader {
     auto image = ToLinearFloat(raw, path, &pixel_type);
     if (!image.ok()) return image.status();
     reader->image_ = std::move(image).value();
-    ApplyDecode(options, &reader->image_);
+    ApplyDecodeOptions(options, &reader->image_);
     ImageInfo& info = reader->info_;
     info.format = format;
     info.width = reader->image_.cols;

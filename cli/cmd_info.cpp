@@ -183,19 +183,15 @@ void PrintText(const io::Session& s, const std::vector<CameraReport>& cams) {
     fmt::print("    types: {}\n", fmt::join(TypeSummary(r), "; "));
     if (r.camera->intrinsics) {
       const auto& k = *r.camera->intrinsics;
-      fmt::print("    intrinsics: fx {} fy {} cx {} cy {} px\n", k.fx, k.fy, k.cx, k.cy);
+      fmt::print("    intrinsics: fx {:.2f} fy {:.2f} cx {:.2f} cy {:.2f} px\n", k.fx, k.fy, k.cx, k.cy);
     }
     total += r.frames.size();
   }
   fmt::print("frames    {}\n", total);
 }
 
-// Wall time and peak resident memory of this process (getrusage ru_maxrss, KiB on Linux).
 std::string RunStats(std::chrono::steady_clock::time_point start) {
-  const double seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
-  rusage usage{};
-  getrusage(RUSAGE_SELF, &usage);
-  return fmt::format("info: done in {:.2f} s, peak RSS {:.1f} MiB", seconds, usage.ru_maxrss / 1024.0);
+  return "info: done in " + TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count());
 }
 
 int RunInfo(const std::string& session_path, bool as_json, bool verify) {

@@ -310,6 +310,8 @@ cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdro
 void ApplySensor(const SimOptions& options, int camera_index, uint64_t frame_key, cv::Mat* image, int threads) {
   const int channels = image->channels();
   const float black = static_cast<float>(options.black_level);
+  const float inv_full_well = 1.0f / options.full_well_electrons;
+  const float read_var = options.read_noise * options.read_noise;
   const int w = image->cols;
   io::ParallelFor(0, image->rows, kRowGrain, threads, [&](int64_t y0, int64_t y1) {
     for (int64_t y = y0; y < y1; ++y) {
@@ -320,8 +322,9 @@ void ApplySensor(const SimOptions& options, int camera_index, uint64_t frame_key
       for (int i = 0; i < w * channels; ++i) {
         float v = row[i];
         if (options.noise) {
-          const float shot_sigma = std::sqrt(std::max(0.0f, v) / options.full_well_electrons);
-          v += shot_sigma * gauss(rng) + options.read_noise * gauss(rng);
+          // Shot (variance v / full well) and read noise are independent
+          // Gaussians, so their sum is one Gaussian with the summed variance.
+          v += std::sqrt(std::max(0.0f, v) * inv_full_well + read_var) * gauss(rng);
         }
         row[i] = std::clamp(v + black, 0.0f, 1.0f);
       }

@@ -37,9 +37,8 @@ std::map<std::string, std::string> Provenance(const SimOptions& o, const std::st
 }
 
 /// `all_lights` is view.Render(every light at gain 1, kBlack, true).
-io::Status WriteTruth(const SimOptions& o, const CameraView& view, const cv::Mat& all_lights, const std::string& camera_id,
-                      const std::string& truth_dir) {
-  const TruthMaps truth = view.Truth();
+io::Status WriteTruth(const SimOptions& o, const CameraView& view, const TruthMaps& truth, const cv::Mat& all_lights,
+                      const std::string& camera_id, const std::string& truth_dir) {
   io::ExrWriteOptions exr;
   exr.pixel_type = io::PixelType::kFloat;
   exr.overwrite = o.overwrite;
@@ -72,7 +71,8 @@ io::Status WriteTruth(const SimOptions& o, const CameraView& view, const cv::Mat
 io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimSummary* summary) {
   LUMENRIG_RETURN_IF_ERROR(ValidateSimOptions(o));
   std::error_code ec;
-  const fs::path dir = fs::absolute(out_dir, ec).lexically_normal();
+  fs::path dir = fs::absolute(out_dir, ec).lexically_normal();
+  if (dir.filename().empty()) dir = dir.parent_path();  // "out/" -> "out"
   const std::string dir_s = dir.string();
   if (fs::exists(dir, ec)) {
     if (!fs::is_directory(dir, ec)) return io::Status::BadInput(fmt::format("{}: exists and is not a folder", dir_s));
@@ -127,9 +127,10 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
     const CameraView view = CameraView::Build(o, cam, 0.0, 0.0, o.threads);
     // Every fully lit frame without motion is a multiple of this one render.
     const cv::Mat all_lights = view.Render(internal::AllLights(rig, 1.0), Backdrop::kBlack, true, o.threads);
-    LUMENRIG_RETURN_IF_ERROR(WriteTruth(o, view, all_lights, cam.id, truth_dir));
+    const TruthMaps truth = view.Truth();
+    LUMENRIG_RETURN_IF_ERROR(WriteTruth(o, view, truth, all_lights, cam.id, truth_dir));
     truth_files += 6;
-    LUMENRIG_RETURN_IF_ERROR(io::WritePng(cam_dir + "/mask.png", view.Truth().mask, o.overwrite));
+    LUMENRIG_RETURN_IF_ERROR(io::WritePng(cam_dir + "/mask.png", truth.mask, o.overwrite));
     cam.mask = cam_dir + "/mask.png";
 
     // Paths (and the session entries) of this camera's frames.
@@ -275,7 +276,7 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
   if (summary != nullptr) {
     summary->session_path = session.path;
     summary->frames_written = frames_written;
-    summary->truth_files = truth_files * 1;
+    summary->truth_files = truth_files;
   }
   return io::Status::Ok();
 }

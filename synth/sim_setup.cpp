@@ -44,8 +44,8 @@ std::string CameraId(int k) { return fmt::format("cam{:02d}", k); }
 io::Status ValidateSimOptions(const SimOptions& o) {
   auto bad = [](const std::string& m) { return io::Status::BadInput("simulate: " + m); };
   if (o.num_lights < 3 || o.num_lights > 4096) return bad(fmt::format("lights: {} is outside [3, 4096]", o.num_lights));
-  if (o.width < 8 || o.height < 8 || o.width > 8192 || o.height > 8192)
-    return bad(fmt::format("size: {}x{} is outside [8, 8192] per side", o.width, o.height));
+  if (o.width < 8 || o.height < 8 || o.width > 4096 || o.height > 4096)
+    return bad(fmt::format("size: {}x{} is outside [8, 4096] per side", o.width, o.height));
   if (o.num_cameras < 1 || o.num_cameras > 64) return bad(fmt::format("cameras: {} is outside [1, 64]", o.num_cameras));
   if (!(o.min_elevation_deg >= -90.0 && o.min_elevation_deg < 80.0))
     return bad(fmt::format("min elevation: {} deg is outside [-90, 80)", o.min_elevation_deg));

@@ -226,6 +226,22 @@ TEST(BandReaders, TiledTiffFallsBackToWholeDecode) {
   EXPECT_LE(MaxAbsDiff(ReadInBands(reader->get(), 10), ReferenceDecode(path)), kTol);
 }
 
+TEST(BandReaders, DiligentPngsMatchOpenCv) {
+  // Real capture files: DiLiGenT ballPNG (Shi et al., CVPR 2016), 16-bit RGB
+  // frames and an 8-bit RGB mask, read with OpenCV as the reference.
+  const std::string dir = lumenrig::test::SharedDataDir("diligent");
+  if (dir.empty()) GTEST_SKIP() << "../shared/data/diligent absent (open dataset not installed)";
+  for (const char* name : {"ballPNG/001.png", "ballPNG/050.png", "ballPNG/mask.png"}) {
+    const std::string path = dir + "/" + name;
+    if (!fs::exists(path)) GTEST_SKIP() << path << " absent";
+    auto reader = BandReader::Open(path);
+    ASSERT_TRUE(reader.ok()) << reader.status().message();
+    EXPECT_EQ((*reader)->info().width, 612);
+    EXPECT_EQ((*reader)->info().height, 512);
+    EXPECT_LE(MaxAbsDiff(ReadInBands(reader->get(), 32), ReferenceDecode(path)), kTol) << name;
+  }
+}
+
 TEST(BandReaders, TruncatedOrCorruptFilesGiveOneLineErrorNamingTheFile) {
   TempDir dir;
   cv::Mat noise(256, 256, CV_8UC3);

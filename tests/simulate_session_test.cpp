@@ -115,6 +115,45 @@ TEST(SimulateSession, DiskFramesEqualTheInMemorySimulatorToHalfPrecision) {
   EXPECT_EQ(cv::norm(alpha, mem->truth.alpha, cv::NORM_INF), 0.0);
 }
 
+// The compositing equation I = alpha F + (1 - alpha) B (Porter and Duff 1984;
+// Smith and Blinn 1996, "Blue screen matting") holds for both matte pairs with
+// the truth alpha and foreground. Tolerance: half-float storage of values
+// <= 1 (2^-11 relative) on three terms (common practice).
+TEST(SimulateSession, MattePairsObeyTheCompositingEquationWithTruth) {
+  test::TempDir tmp;
+  SimOptions o = SmallOptions();
+  o.num_cameras = 1;
+  o.noise = false;
+  o.black_level = 0.0;
+  ASSERT_TRUE(SimulateSession(o, tmp / "s").ok());
+  auto session = io::LoadSession(tmp / "s");
+  ASSERT_TRUE(session.ok()) << session.status().message();
+  const cv::Mat alpha = Read(tmp / "s/truth/cam00/alpha.exr");
+  const cv::Mat fg = Read(tmp / "s/truth/cam00/foreground.exr");
+  ASSERT_EQ(session->cameras[0].matte_pairs.size(), 2u);
+  int fractional = 0;
+  for (const io::MattePair& pair : session->cameras[0].matte_pairs) {
+    const cv::Mat plate = Read(pair.plate);
+    const cv::Mat frame = Read(pair.frame);
+    for (int y = 0; y < o.height; ++y) {
+      for (int x = 0; x < o.width; ++x) {
+        const float a = alpha.at<float>(y, x);
+        if (a > 0.0f && a < 1.0f) ++fractional;
+        const cv::Vec3f expect = a * fg.at<cv::Vec3f>(y, x) + (1.0f - a) * plate.at<cv::Vec3f>(y, x);
+        const cv::Vec3f got = frame.at<cv::Vec3f>(y, x);
+        for (int c = 0; c < 3; ++c) ASSERT_NEAR(got[c], expect[c], 3e-3) << "pixel (" << x << "," << y << ")";
+      }
+    }
+  }
+  EXPECT_GT(fractional, 20);
+  // The two plates differ by >= 0.15 per channel everywhere (triangulation needs it).
+  cv::Mat diff;
+  cv::absdiff(Read(session->cameras[0].matte_pairs[0].plate), Read(session->cameras[0].matte_pairs[1].plate), diff);
+  double mn;
+  cv::minMaxLoc(diff.reshape(1), &mn, nullptr);
+  EXPECT_GE(mn, 0.149);
+}
+
 TEST(SimulateSession, ByteIdenticalForOneAndTwoThreads) {
   test::TempDir tmp;
   SimOptions o = SmallOptions();
@@ -241,7 +280,8 @@ TEST(SimulateSessionFaults, MotionShowsInTrackingFrames) {
 
 TEST(SimulateCli, WritesSessionAndPrintsWhere) {
   test::TempDir tmp;
-  auto r = test::RunCli("simulate --out " + (tmp / "s") + " --size 48x32 --lights 6 --no-noise --threads 2");
+  // A trailing slash names the same folder.
+  auto r = test::RunCli("simulate --out " + (tmp / "s/") + " --size 48x32 --lights 6 --no-noise --threads 2");
   ASSERT_EQ(r.exit_code, 0) << r.err;
   EXPECT_NE(r.out.find("session: " + fs::absolute(tmp / "s").string() + "/session.json"), std::string::npos) << r.out;
   EXPECT_NE(r.out.find("peak RSS"), std::string::npos);

@@ -168,6 +168,74 @@ TEST(SimulatorAlpha, SilhouetteAndHairHaveFractionalCoverage) {
   EXPECT_GT(full, 2000);
 }
 
+TEST(SimulatorShading, SpecularAddsEnergyAndIsFinite) {
+  SimOptions o = PlainOptions();
+  auto diffuse = SimulateCamera(o, 0);
+  ASSERT_TRUE(diffuse.ok());
+  for (SpecularModel model : {SpecularModel::kBlinnPhong, SpecularModel::kGgx}) {
+    o.specular = model;
+    auto spec = SimulateCamera(o, 0);
+    ASSERT_TRUE(spec.ok());
+    int brighter = 0;
+    for (size_t k = 0; k < spec->olat.size(); ++k) {
+      cv::Mat diff = spec->olat[k] - diffuse->olat[k];
+      ASSERT_TRUE(cv::checkRange(spec->olat[k])) << "NaN or Inf, light " << k;
+      double mn;
+      cv::minMaxLoc(diff.reshape(1), &mn, nullptr);
+      EXPECT_GE(mn, -1e-6) << "a specular lobe never removes light (light " << k << ")";
+      brighter += cv::countNonZero(diff.reshape(1) > 1e-4);
+    }
+    EXPECT_GT(brighter, 100) << "model " << static_cast<int>(model);
+  }
+}
+
+TEST(SimulatorShading, CastShadowsOnlyRemoveLight) {
+  SimOptions o = PlainOptions();
+  o.min_elevation_deg = 50;  // high lights: the head shadows the shoulders
+  auto open = SimulateCamera(o, 0);
+  o.shadows = true;
+  auto shadowed = SimulateCamera(o, 0);
+  ASSERT_TRUE(open.ok() && shadowed.ok());
+  int darker = 0;
+  for (size_t k = 0; k < open->olat.size(); ++k) {
+    cv::Mat diff = open->olat[k] - shadowed->olat[k];
+    double mn;
+    cv::minMaxLoc(diff.reshape(1), &mn, nullptr);
+    EXPECT_GE(mn, 0.0) << "light " << k;
+    darker += cv::countNonZero(diff.reshape(1) > 1e-3);
+  }
+  EXPECT_GT(darker, 100);
+}
+
+// Superposition: light transport is linear in the sources (the basis of
+// Debevec reflectance-field relighting), so a frame with every light on is
+// the sum of the single-light frames. Tolerance: float summation of <= 12
+// terms of values <= 1 (common practice).
+TEST(SimulatorShading, FullyLitFrameIsTheSumOfSingleLightFrames) {
+  SimOptions o = PlainOptions();
+  o.specular = SpecularModel::kBlinnPhong;
+  o.shadows = true;
+  const io::Rig rig = MakeSimRig(o);
+  const CameraView view = CameraView::Build(o, MakeSimCameras(o)[0], 0.0, 0.0, 2);
+  std::vector<LitLight> all;
+  cv::Mat sum = cv::Mat::zeros(o.height, o.width, CV_32FC3);
+  for (const io::Light& l : rig.lights) {
+    all.push_back({l, 0.5});
+    sum += view.Render({{l, 0.5}}, Backdrop::kBlack, true, 2);
+  }
+  const cv::Mat together = view.Render(all, Backdrop::kBlack, true, 2);
+  EXPECT_LE(cv::norm(together, sum, cv::NORM_INF), 1e-5);
+  EXPECT_GT(cv::norm(together, cv::NORM_INF), 0.1);
+  // Composite scales a render and adds the backdrop behind fractional alpha.
+  const cv::Mat lit = view.Composite(view.Render(all, Backdrop::kBlack, true, 2), 2.0, Backdrop::kMatteA);
+  const cv::Mat direct = view.Render([&] {
+    std::vector<LitLight> twice = all;
+    for (auto& l : twice) l.gain = 1.0;
+    return twice;
+  }(), Backdrop::kMatteA, true, 2);
+  EXPECT_LE(cv::norm(lit, direct, cv::NORM_INF), 1e-5);
+}
+
 bool SameBytes(const cv::Mat& a, const cv::Mat& b) {
   if (a.size() != b.size() || a.type() != b.type()) return false;
   for (int y = 0; y < a.rows; ++y)

@@ -1,0 +1,30 @@
+#!/bin/sh
+# Full-view normals stage benchmark: peak RSS under --mem-budget and time
+# relative to decoding the frames, on a generated session kept out of the repo.
+#
+#   bench/normals_stage_bench.sh BUILD_DIR [SIZE] [LIGHTS] [THREADS]
+#
+# Defaults: a 2048x2048 view with 156 lights (half ZIP EXR, about 2 GB in
+# /tmp/lumenrig-normals-bench). Prints the decode time (every frame read
+# through io::BandReader, as the stage does), then for 1G and 4G budgets
+# and both methods the stage's own summary, its peak RSS, and the ratio of
+# the stage's wall time to the decode time.
+set -eu
+build=$1
+size=${2:-2048}
+lights=${3:-156}
+threads=${4:-2}
+dir=/tmp/lumenrig-normals-bench/view${size}x${lights}
+out=/tmp/lumenrig-normals-bench/out
+[ -f "$dir/session.json" ] || "$build/bench/normals_bench" --make-session "$dir" "$size" "$lights"
+du -sh "$dir"
+decode=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 | tee /dev/stderr | sed -n 's/.*: \([0-9.]*\) s$/\1/p')
+for method in lsq robust; do
+  for budget in 1G 4G; do
+    log=$(NO_COLOR=1 "$build/cli/lumenrig" normals "$dir" --out "$out" --method "$method" --mem-budget "$budget" \
+          --threads "$threads" --force)
+    echo "$log" | tail -2
+    wall=$(echo "$log" | sed -n 's/^normals: wall \([0-9.]*\) s.*/\1/p')
+    echo "  -> $method, budget $budget: wall / decode = $(echo "$wall / $decode" | bc -l | cut -c1-5)"
+  done
+done

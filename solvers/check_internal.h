@@ -1,0 +1,48 @@
+#pragma once
+// Private pieces of the session check shared by session_check.cpp and the
+// check_*.cpp files. Not installed; not part of the public API.
+
+#include <string>
+#include <vector>
+
+#include <opencv2/core.hpp>
+
+#include "lumenrig/capture_io/session.h"
+#include "lumenrig/solvers/session_check.h"
+
+namespace lumenrig::solvers::check_detail {
+
+/// A check line with its thresholds; value/verdict/summary filled later.
+CheckLine MakeLine(const std::string& key, const std::string& title, const std::string& unit, double warn,
+                   double fail);
+/// Adds a finding, raises the line's verdict and the frame's flag.
+void AddFinding(CheckLine* line, Finding finding);
+
+/// The single pass: reads mask, dark, clean plate, backlit and lit once per
+/// camera, then every OLAT and tracking frame once (in parallel), filling
+/// result->cameras and result->frames. Problems reading files become FAIL
+/// findings in *integrity (completeness line).
+io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                       CheckLine* integrity, int threads);
+
+/// Translation of `moved` against `reference` (both CV_32FC1, same size) by
+/// OpenCV phase correlation with the given window (CV_32FC1, empty = Hann).
+/// Positive x: content moved right; positive y: content moved down. Pixels of
+/// the inputs' grid.
+cv::Point2d EstimateShift(const cv::Mat& reference, const cv::Mat& moved, const cv::Mat& window,
+                          double* response = nullptr);
+
+void CheckCompleteness(const io::Session& session, CheckResult* result, CheckLine* line);
+void CheckExposure(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                   std::vector<CheckLine>* lines);
+void CheckLights(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                 std::vector<CheckLine>* lines);
+void CheckStability(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                    std::vector<CheckLine>* lines);
+void CheckMatting(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                  std::vector<CheckLine>* lines);
+
+/// Formats a number for messages: up to 3 significant decimals, no trailing zeros.
+std::string Num(double value, int decimals = 2);
+
+}  // namespace lumenrig::solvers::check_detail

@@ -1,0 +1,543 @@
+// The single reading pass of the session check: every file decoded once,
+// OLAT and tracking frames streamed in row bands, each reduced to a small
+// FrameSummary (statistics, a PNG thumbnail, a coarse analysis grid).
+#include <algorithm>
+#include <atomic>
+#include <cmath>
+#include <mutex>
+
+#include <opencv2/imgcodecs.hpp>
+#include <opencv2/imgproc.hpp>
+
+#include "check_internal.h"
+#include "lumenrig/capture_io/color.h"
+#include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/parallel.h"
+
+namespace lumenrig::solvers::check_detail {
+
+namespace {
+
+constexpr int kHistBins = 4096;
+
+/// Per-camera state built before the OLAT pass.
+struct CameraContext {
+  int width = 0, height = 0;
+  cv::Mat mask;             // CV_8U, 255 = subject; full resolution
+  std::vector<int> grid_x;  // column -> analysis cell column
+  std::vector<int> grid_y;  // row -> analysis cell row
+  std::vector<int> row_begin, row_end;  // per row, extent [begin, end) of mask pixels
+  int grid_w = 0, grid_h = 0;
+  double dark_lum = 0.0;
+  Eigen::Vector3d dark_rgb{0, 0, 0};
+};
+
+float Luma(float r, float g, float b) { return io::Bt709Luminance(r, g, b); }
+
+/// Luminance of a CV_32FC1/3 RGB image.
+cv::Mat Luminance(const cv::Mat& image) {
+  if (image.channels() == 1) return image.clone();
+  cv::Mat out(image.size(), CV_32FC1);
+  for (int y = 0; y < image.rows; ++y) {
+    const float* p = image.ptr<float>(y);
+    float* o = out.ptr<float>(y);
+    for (int x = 0; x < image.cols; ++x) o[x] = Luma(p[3 * x], p[3 * x + 1], p[3 * x + 2]);
+  }
+  return out;
+}
+
+/// Area reduction by an integer factor (drops the remainder rows/columns).
+cv::Mat ReduceBy(const cv::Mat& image, int factor) {
+  if (factor <= 1) return image;
+  const int w = image.cols / factor, h = image.rows / factor;
+  cv::Mat out;
+  cv::resize(image(cv::Rect(0, 0, w * factor, h * factor)), out, cv::Size(w, h), 0, 0, cv::INTER_AREA);
+  return out;
+}
+
+/// Subject mask from the clean plate and a fully lit frame: Otsu threshold on
+/// the absolute luminance difference, then a 3x3 opening and closing.
+cv::Mat MaskFromDifference(const cv::Mat& plate_lum, const cv::Mat& lit_lum) {
+  cv::Mat diff;
+  cv::absdiff(plate_lum, lit_lum, diff);
+  double max_value = 0;
+  cv::minMaxLoc(diff, nullptr, &max_value);
+  if (!(max_value > 0)) return cv::Mat();
+  cv::Mat diff8;
+  diff.convertTo(diff8, CV_8U, 255.0 / max_value);
+  cv::Mat mask;
+  cv::threshold(diff8, mask, 0, 255, cv::THRESH_BINARY | cv::THRESH_OTSU);
+  const cv::Mat k = cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(3, 3));
+  cv::morphologyEx(mask, mask, cv::MORPH_OPEN, k);
+  cv::morphologyEx(mask, mask, cv::MORPH_CLOSE, k);
+  return mask;
+}
+
+/// Window for phase correlation on the background: Hann times "not subject"
+/// (the subject mask dilated and feathered), so the silhouette that differs
+/// between clean plate and backlit frame does not pull the peak.
+cv::Mat BackgroundWindow(const cv::Mat& mask8, cv::Size size) {
+  cv::Mat hann;
+  cv::createHanningWindow(hann, size, CV_32F);
+  if (mask8.empty()) return hann;
+  cv::Mat m;
+  cv::resize(mask8, m, size, 0, 0, cv::INTER_AREA);
+  const int r = std::max(3, std::max(size.width, size.height) / 32);
+  cv::dilate(m, m, cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(2 * r + 1, 2 * r + 1)));
+  cv::Mat subject;
+  m.convertTo(subject, CV_32F, 1.0 / 255.0);
+  cv::GaussianBlur(subject, subject, cv::Size(0, 0), r);
+  cv::Mat background = 1.0 - subject;
+  return hann.mul(background);
+}
+
+struct FrameJob {
+  int camera = 0;
+  FrameKind kind = FrameKind::kOlat;
+  int light = -1;
+  int order = 0;
+  std::string path;
+};
+
+void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOptions& decode,
+               const CheckOptions& options, double saturation, FrameSummary* s) {
+  s->kind = job.kind;
+  s->camera = job.camera;
+  s->light = job.light;
+  s->order = job.order;
+  s->path = job.path;
+  auto reader = io::BandReader::Open(job.path, decode);
+  if (!reader.ok()) {
+    s->error = reader.status().message();
+    return;
+  }
+  const io::ImageInfo info = (*reader)->info();
+  s->width = info.width;
+  s->height = info.height;
+  s->channels = info.channels;
+  s->pixel_type = info.pixel_type;
+  if (info.width != ctx.width || info.height != ctx.height) {
+    // Reported by the completeness check; its pixels cannot be compared.
+    s->readable = true;
+    return;
+  }
+  const int W = info.width, H = info.height;
+  const int nc = info.channels;
+
+  // Thumbnail grid (all pixels) and analysis grid (mask pixels).
+  const double tscale = options.thumbnail_px / std::max(W, H);
+  const int tw = std::max(1, static_cast<int>(std::lround(W * std::min(1.0, tscale))));
+  const int th = std::max(1, static_cast<int>(std::lround(H * std::min(1.0, tscale))));
+  std::vector<int> tx(W);
+  for (int x = 0; x < W; ++x) tx[x] = static_cast<int>(static_cast<int64_t>(x) * tw / W);
+  std::vector<double> tacc(static_cast<size_t>(tw) * th * 3, 0.0);
+  std::vector<int> tcnt(static_cast<size_t>(tw) * th, 0);
+  std::vector<double> gsum(static_cast<size_t>(ctx.grid_w) * ctx.grid_h, 0.0);
+  std::vector<int> gcnt(gsum.size(), 0);
+
+  // Motion grid (tracking frames): integer area reduction.
+  int mf = 1, mw = 0, mh = 0;
+  std::vector<float> macc;
+  if (job.kind == FrameKind::kTracking) {
+    mf = std::max(1, static_cast<int>(std::ceil(std::max(W, H) / options.motion_max_px)));
+    mw = W / mf;
+    mh = H / mf;
+    macc.assign(static_cast<size_t>(mw) * mh, 0.0f);
+  }
+
+  std::vector<int64_t> hist(kHistBins, 0);
+  const double hist_max = saturation * 1.0625;
+  const double hist_scale = kHistBins / hist_max;
+  const float sat = static_cast<float>(saturation * (1.0 - 1e-3));
+  double sum_r = 0, sum_g = 0, sum_b = 0, sum_abs_d = 0;
+  int64_t count = 0, clipped = 0, n_d = 0;
+
+  const int lpb = std::max(1, info.lines_per_block);
+  const int band = std::max(lpb, static_cast<int>(std::lround(options.band_rows / lpb)) * lpb);
+  cv::Mat rows;
+  std::vector<unsigned char> full_mask_row(W, 255);
+  const int thumb_step = std::max(1, std::min(W / tw, H / th) / 4);
+  const int noise_step = std::max(1, H / 256);
+  for (int y0 = 0; y0 < H; y0 += band) {
+    const int y1 = std::min(H, y0 + band);
+    io::Status st = (*reader)->ReadRows(y0, y1, &rows);
+    if (!st.ok()) {
+      s->error = st.message();
+      return;
+    }
+    for (int y = y0; y < y1; ++y) {
+      const float* p = rows.ptr<float>(y - y0);
+      const unsigned char* m = ctx.mask.empty() ? full_mask_row.data() : ctx.mask.ptr<unsigned char>(y);
+      auto rgb = [&](int x, float* r, float* g, float* b) {
+        if (nc == 3) {
+          *r = p[3 * x];
+          *g = p[3 * x + 1];
+          *b = p[3 * x + 2];
+        } else {
+          *r = *g = *b = p[x];
+        }
+      };
+      auto luma = [&](int x) { return nc == 3 ? Luma(p[3 * x], p[3 * x + 1], p[3 * x + 2]) : p[x]; };
+      // Statistics over the mask pixels of this row (its extent precomputed).
+      const int xb = ctx.row_begin[y], xe = ctx.row_end[y];
+      if (xb < xe) {
+        const int gy = ctx.grid_y[y];
+        double* grow = &gsum[static_cast<size_t>(gy) * ctx.grid_w];
+        int* gcrow = &gcnt[static_cast<size_t>(gy) * ctx.grid_w];
+        float rr = 0, rg = 0, rb = 0;
+        int64_t rc = 0, rclip = 0;
+        for (int x = xb; x < xe; ++x) {
+          if (!m[x]) continue;
+          float r, g, b;
+          rgb(x, &r, &g, &b);
+          const float l = Luma(r, g, b);
+          rr += r;
+          rg += g;
+          rb += b;
+          ++rc;
+          rclip += std::max(r, std::max(g, b)) >= sat ? 1 : 0;
+          const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale)));
+          ++hist[bin];
+          const int gx = ctx.grid_x[x];
+          grow[gx] += l;
+          ++gcrow[gx];
+        }
+        sum_r += rr;
+        sum_g += rg;
+        sum_b += rb;
+        count += rc;
+        clipped += rclip;
+        // Noise: horizontal second difference inside the mask, away from
+        // clipping, on every noise_step-th row (plenty of samples).
+        if (y % noise_step == 0) {
+          for (int x = std::max(1, xb); x + 1 < std::min(W, xe + 1); ++x) {
+            if (!(m[x - 1] && m[x] && m[x + 1])) continue;
+            const float a = luma(x - 1), c = luma(x), d = luma(x + 1);
+            if (a < sat && c < sat && d < sat) {
+              sum_abs_d += std::abs(a - 2.0f * c + d);
+              ++n_d;
+            }
+          }
+        }
+      }
+      // Thumbnail from a regular subsample (about 16 samples per thumbnail pixel).
+      if (y % thumb_step == 0) {
+        const int ty = static_cast<int>(static_cast<int64_t>(y) * th / H);
+        double* trow = &tacc[static_cast<size_t>(ty) * tw * 3];
+        int* tcrow = &tcnt[static_cast<size_t>(ty) * tw];
+        for (int x = 0; x < W; x += thumb_step) {
+          float r, g, b;
+          rgb(x, &r, &g, &b);
+          double* t = trow + 3 * tx[x];
+          t[0] += r;
+          t[1] += g;
+          t[2] += b;
+          ++tcrow[tx[x]];
+        }
+      }
+      if (!macc.empty() && y / mf < mh) {
+        float* mrow = &macc[static_cast<size_t>(y / mf) * mw];
+        for (int x = 0; x < mw * mf; ++x) mrow[x / mf] += luma(x);
+      }
+    }
+  }
+  s->readable = true;
+
+  // Statistics inside the mask, corrected by the residual dark level.
+  if (count > 0) {
+    s->mean_rgb = Eigen::Vector3d(sum_r, sum_g, sum_b) / static_cast<double>(count) - ctx.dark_rgb;
+    s->mean = Luma(static_cast<float>(s->mean_rgb.x()), static_cast<float>(s->mean_rgb.y()),
+                   static_cast<float>(s->mean_rgb.z()));
+    s->clipped_pct = 100.0 * static_cast<double>(clipped) / static_cast<double>(count);
+    const int64_t target = static_cast<int64_t>(std::ceil(0.99 * static_cast<double>(count)));
+    int64_t acc = 0;
+    int bin = 0;
+    for (; bin < kHistBins; ++bin) {
+      acc += hist[bin];
+      if (acc >= target) break;
+    }
+    s->p99 = (bin + 0.5) / hist_scale - ctx.dark_lum;
+  }
+  // Gaussian noise: E|d| = sigma * sqrt(6) * sqrt(2/pi) for the [1,-2,1] kernel
+  // (the 1-D form of Immerkaer, "Fast noise variance estimation", CVIU 1996).
+  if (n_d > 0) s->noise_sigma = std::sqrt(M_PI / 2.0) * (sum_abs_d / static_cast<double>(n_d)) / std::sqrt(6.0);
+  s->snr_db = (s->noise_sigma > 0 && s->mean > 0) ? 20.0 * std::log10(s->mean / s->noise_sigma) : 0.0;
+
+  // Analysis grid.
+  s->grid_w = ctx.grid_w;
+  s->grid_h = ctx.grid_h;
+  s->grid.assign(gsum.size(), 0.0f);
+  for (size_t i = 0; i < gsum.size(); ++i)
+    if (gcnt[i] > 0) s->grid[i] = static_cast<float>(gsum[i] / gcnt[i] - ctx.dark_lum);
+
+  // Thumbnail: full scale (saturation) maps to white.
+  cv::Mat thumb(th, tw, CV_32FC3);
+  for (int y = 0; y < th; ++y) {
+    float* o = thumb.ptr<float>(y);
+    for (int x = 0; x < tw; ++x) {
+      const size_t i = static_cast<size_t>(y) * tw + x;
+      const double n = std::max(1, tcnt[i]);
+      for (int c = 0; c < 3; ++c) o[3 * x + c] = static_cast<float>(tacc[3 * i + c] / n);
+    }
+  }
+  cv::imencode(".png", io::ToPreview8(thumb, static_cast<float>(1.0 / saturation)), s->thumbnail_png);
+
+  if (!macc.empty()) {
+    const float inv = 1.0f / static_cast<float>(mf * mf);
+    for (auto& v : macc) v *= inv;
+    s->motion = std::move(macc);
+    s->motion_w = mw;
+    s->motion_h = mh;
+  }
+}
+
+}  // namespace
+
+io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                       CheckLine* integrity, int threads) {
+  const io::DecodeOptions decode = io::DecodeOptionsFor(session);
+  // Saturation in decoded units (after transfer function and black level).
+  double saturation = options.saturation_level;
+  if (decode.encoding == io::Encoding::kSrgb) saturation = io::SrgbToLinear(static_cast<float>(saturation));
+  saturation -= decode.black_level;
+  if (!(saturation > 0))
+    return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}", session.path,
+                                            decode.black_level, options.saturation_level));
+
+  const int ncam = static_cast<int>(session.cameras.size());
+  result->cameras.assign(ncam, CameraSummary{});
+  std::vector<CameraContext> contexts(ncam);
+  std::vector<std::vector<Finding>> cam_findings(ncam);
+
+  // Phase A: per camera, the reference size, mask, dark, clean plate, backlit, lit.
+  io::ParallelFor(0, ncam, 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t c = b; c < e; ++c) {
+      const io::Camera& cam = session.cameras[c];
+      CameraSummary& cs = result->cameras[c];
+      CameraContext& ctx = contexts[c];
+      auto& findings = cam_findings[c];
+      cs.id = cam.id;
+      auto fail = [&](const std::string& frame, const std::string& message) {
+        Finding f;
+        f.verdict = Verdict::kFail;
+        f.camera = cam.id;
+        f.frame = frame;
+        f.message = message;
+        findings.push_back(std::move(f));
+      };
+      // Reference size: the first OLAT frame whose header reads.
+      for (const auto& o : cam.olat) {
+        auto info = io::ProbeImage(o.path);
+        if (info.ok()) {
+          ctx.width = info->width;
+          ctx.height = info->height;
+          break;
+        }
+      }
+      cs.width = ctx.width;
+      cs.height = ctx.height;
+      if (ctx.width == 0) continue;  // nothing readable; completeness reports each frame
+      const cv::Size size(ctx.width, ctx.height);
+      auto read_aux = [&](const std::string& path, const char* key) -> cv::Mat {
+        if (path.empty()) return cv::Mat();
+        auto img = io::ReadImage(path, decode);
+        if (!img.ok()) {
+          fail(path, fmt::format("camera {}: {} frame unreadable: {}", cam.id, key, img.status().message()));
+          return cv::Mat();
+        }
+        if (img->size() != size) {
+          fail(path, fmt::format("camera {}: {} frame is {}x{}, the OLAT frames are {}x{}", cam.id, key, img->cols,
+                                 img->rows, ctx.width, ctx.height));
+          return cv::Mat();
+        }
+        return std::move(img).value();
+      };
+
+      // Mask: file, else clean plate vs lit, else the whole frame.
+      if (!cam.mask.empty()) {
+        auto m = io::ReadImage(cam.mask);
+        if (!m.ok()) {
+          fail(cam.mask, fmt::format("camera {}: mask unreadable: {}", cam.id, m.status().message()));
+        } else if (m->size() != size) {
+          fail(cam.mask, fmt::format("camera {}: mask is {}x{}, the OLAT frames are {}x{}", cam.id, m->cols, m->rows,
+                                     ctx.width, ctx.height));
+        } else {
+          cv::Mat l = Luminance(*m);
+          ctx.mask = l > 0.0f;
+          cs.mask_source = "mask file";
+        }
+      }
+      cv::Mat dark = read_aux(cam.dark, "dark");
+      cv::Mat plate = read_aux(cam.clean_plate, "clean plate");
+      cv::Mat backlit = read_aux(cam.backlit, "backlit");
+      cv::Mat lit = read_aux(cam.lit, "lit");
+      cv::Mat plate_lum = plate.empty() ? cv::Mat() : Luminance(plate);
+      plate.release();
+      if (ctx.mask.empty() && !plate_lum.empty() && !lit.empty()) {
+        ctx.mask = MaskFromDifference(plate_lum, Luminance(lit));
+        if (!ctx.mask.empty()) cs.mask_source = "estimated: clean plate vs lit frame";
+      }
+      lit.release();
+      if (!ctx.mask.empty() && cv::countNonZero(ctx.mask) == 0) {
+        fail(cam.mask, fmt::format("camera {}: subject mask is empty", cam.id));
+        ctx.mask.release();
+      }
+      if (ctx.mask.empty()) cs.mask_source = "whole frame (no mask, no clean plate + lit pair)";
+      cs.mask_fraction = ctx.mask.empty() ? 1.0
+                                          : static_cast<double>(cv::countNonZero(ctx.mask)) /
+                                                (static_cast<double>(ctx.width) * ctx.height);
+
+      // Subject window for motion (tracking frames are area-reduced by an
+      // integer factor): the mask dilated and feathered, cropped to its box,
+      // times a Hann window, so the static background does not anchor the peak.
+      cs.motion_factor = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / options.motion_max_px)));
+      if (!cam.tracking.empty()) {
+        const int mf = cs.motion_factor, mw = ctx.width / mf, mh = ctx.height / mf;
+        cv::Rect crop(0, 0, mw, mh);
+        cv::Mat weight(mh, mw, CV_32F, cv::Scalar(1.0f));
+        if (!ctx.mask.empty()) {
+          cv::Mat m;
+          cv::resize(ctx.mask(cv::Rect(0, 0, mw * mf, mh * mf)), m, cv::Size(mw, mh), 0, 0, cv::INTER_AREA);
+          const int r = std::max(3, std::max(mw, mh) / 32);
+          cv::dilate(m, m, cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(2 * r + 1, 2 * r + 1)));
+          cv::Rect box = cv::boundingRect(m);
+          box.x -= r;
+          box.y -= r;
+          box.width += 2 * r;
+          box.height += 2 * r;
+          crop = box & cv::Rect(0, 0, mw, mh);
+          m.convertTo(weight, CV_32F, 1.0 / 255.0);
+          cv::GaussianBlur(weight, weight, cv::Size(0, 0), r / 2.0);
+        }
+        if (crop.width >= 8 && crop.height >= 8) {
+          cv::Mat hann;
+          cv::createHanningWindow(hann, crop.size(), CV_32F);
+          cv::Mat w = weight(crop).mul(hann);
+          cs.motion_crop[0] = crop.x;
+          cs.motion_crop[1] = crop.y;
+          cs.motion_crop[2] = crop.width;
+          cs.motion_crop[3] = crop.height;
+          cs.motion_window.assign(w.begin<float>(), w.end<float>());
+        }
+      }
+
+      // Dark frame: residual black level (the session black_level is already subtracted).
+      if (!dark.empty()) {
+        cs.has_dark = true;
+        const cv::Scalar mean = cv::mean(dark);
+        if (dark.channels() == 3) {
+          cs.dark_mean = Eigen::Vector3d(mean[0], mean[1], mean[2]);
+        } else {
+          cs.dark_mean = Eigen::Vector3d::Constant(mean[0]);
+        }
+        cv::Mat dl = Luminance(dark);
+        cv::Mat d2;
+        const float k[3] = {1.0f, -2.0f, 1.0f};
+        cv::filter2D(dl, d2, CV_32F, cv::Mat(1, 3, CV_32F, const_cast<float*>(k)));
+        cs.dark_noise = std::sqrt(M_PI / 2.0) * cv::mean(cv::abs(d2))[0] / std::sqrt(6.0);
+        ctx.dark_rgb = cs.dark_mean;
+        ctx.dark_lum = Luma(static_cast<float>(cs.dark_mean.x()), static_cast<float>(cs.dark_mean.y()),
+                            static_cast<float>(cs.dark_mean.z()));
+      }
+      dark.release();
+
+      // Clean plate vs backlit: sub-pixel shift on the background texture.
+      if (!plate_lum.empty() && !backlit.empty()) {
+        cv::Mat back_lum = Luminance(backlit);
+        const int f = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / 2048.0)));
+        cv::Mat a = ReduceBy(plate_lum, f), bb = ReduceBy(back_lum, f);
+        // The subject only darkens the backdrop in the backlit frame: pixels
+        // below 80% of the clean plate (partial coverage, hair) are left out
+        // too, with a 2 px margin.
+        cv::Mat occluded = bb < 0.8 * a;
+        cv::dilate(occluded, occluded, cv::getStructuringElement(cv::MORPH_ELLIPSE, cv::Size(5, 5)));
+        cv::Mat keep;
+        cv::Mat(occluded == 0).convertTo(keep, CV_32F, 1.0 / 255.0);
+        const cv::Point2d d = EstimateShift(a, bb, BackgroundWindow(ctx.mask, a.size()).mul(keep));
+        cs.has_alignment = true;
+        cs.align_dx_px = d.x * f;
+        cs.align_dy_px = d.y * f;
+      }
+
+      // Extent of the mask on each row (the statistics loop visits only it).
+      ctx.row_begin.assign(ctx.height, 0);
+      ctx.row_end.assign(ctx.height, ctx.width);
+      if (!ctx.mask.empty()) {
+        for (int y = 0; y < ctx.height; ++y) {
+          const unsigned char* m = ctx.mask.ptr<unsigned char>(y);
+          int b = 0, e = ctx.width;
+          while (b < e && !m[b]) ++b;
+          while (e > b && !m[e - 1]) --e;
+          ctx.row_begin[y] = b;
+          ctx.row_end[y] = e;
+        }
+      }
+
+      // Analysis grid cells: valid when at least half their pixels are subject.
+      const double gscale = options.analysis_grid / std::max(ctx.width, ctx.height);
+      ctx.grid_w = std::max(1, static_cast<int>(std::lround(ctx.width * std::min(1.0, gscale))));
+      ctx.grid_h = std::max(1, static_cast<int>(std::lround(ctx.height * std::min(1.0, gscale))));
+      ctx.grid_x.resize(ctx.width);
+      ctx.grid_y.resize(ctx.height);
+      for (int x = 0; x < ctx.width; ++x) ctx.grid_x[x] = static_cast<int>(static_cast<int64_t>(x) * ctx.grid_w / ctx.width);
+      for (int y = 0; y < ctx.height; ++y) ctx.grid_y[y] = static_cast<int>(static_cast<int64_t>(y) * ctx.grid_h / ctx.height);
+      std::vector<int> in(static_cast<size_t>(ctx.grid_w) * ctx.grid_h, 0), all(in.size(), 0);
+      for (int y = 0; y < ctx.height; ++y) {
+        const unsigned char* m = ctx.mask.empty() ? nullptr : ctx.mask.ptr<unsigned char>(y);
+        for (int x = 0; x < ctx.width; ++x) {
+          const size_t i = static_cast<size_t>(ctx.grid_y[y]) * ctx.grid_w + ctx.grid_x[x];
+          ++all[i];
+          in[i] += (m == nullptr || m[x]) ? 1 : 0;
+        }
+      }
+      cs.grid_w = ctx.grid_w;
+      cs.grid_h = ctx.grid_h;
+      cs.grid_valid.resize(in.size());
+      for (size_t i = 0; i < in.size(); ++i) cs.grid_valid[i] = (2 * in[i] >= all[i] && all[i] > 0) ? 1 : 0;
+    }
+  });
+  for (auto& fs : cam_findings)
+    for (auto& f : fs) AddFinding(integrity, std::move(f));
+
+  // Phase B: every OLAT and tracking frame once, in parallel across frames.
+  std::vector<FrameJob> jobs;
+  for (int c = 0; c < ncam; ++c) {
+    const io::Camera& cam = session.cameras[c];
+    for (size_t i = 0; i < cam.olat.size(); ++i)
+      jobs.push_back({c, FrameKind::kOlat, cam.olat[i].light, static_cast<int>(i), cam.olat[i].path});
+  }
+  for (int c = 0; c < ncam; ++c) {
+    const io::Camera& cam = session.cameras[c];
+    for (size_t i = 0; i < cam.tracking.size(); ++i)
+      jobs.push_back({c, FrameKind::kTracking, cam.tracking[i].after_light, static_cast<int>(i), cam.tracking[i].path});
+  }
+  result->frames.assign(jobs.size(), FrameSummary{});
+  std::mutex progress_mutex;
+  int done = 0;
+  const int total = static_cast<int>(jobs.size());
+  io::ParallelFor(0, total, 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) {
+      const FrameJob& job = jobs[j];
+      const CameraContext& ctx = contexts[job.camera];
+      FrameSummary& s = result->frames[j];
+      if (ctx.width == 0) {
+        s.kind = job.kind;
+        s.camera = job.camera;
+        s.light = job.light;
+        s.order = job.order;
+        s.path = job.path;
+        auto probe = io::ProbeImage(job.path);
+        s.error = probe.ok() ? "unreadable" : probe.status().message();
+      } else {
+        ScanFrame(job, ctx, decode, options, saturation, &s);
+      }
+      if (options.progress) {
+        std::lock_guard<std::mutex> lock(progress_mutex);
+        options.progress(++done, total);
+      }
+    }
+  });
+  return io::Status::Ok();
+}
+
+}  // namespace lumenrig::solvers::check_detail

@@ -1,0 +1,459 @@
+#include "lumenrig/solvers/normals_stage.h"
+
+#include <algorithm>
+#include <atomic>
+#include <chrono>
+#include <cmath>
+#include <filesystem>
+#include <memory>
+
+#include <fmt/format.h>
+#include <opencv2/imgproc.hpp>
+
+#include "lumenrig/capture_io/atomic_file.h"
+#include "lumenrig/capture_io/color.h"
+#include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/parallel.h"
+
+namespace lumenrig::solvers {
+namespace {
+
+namespace fs = std::filesystem;
+using Clock = std::chrono::steady_clock;
+
+constexpr int64_t kTilePixels = 2048;           // pixels per solve task (fixed: output independent of threads)
+constexpr int64_t kBaselineBytes = 64ll << 20;  // libraries, code, allocator slack
+constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex) or Poisson
+
+double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::duration<double>(b - a).count(); }
+
+std::string Mib(int64_t bytes) { return fmt::format("{:.0f} MiB", bytes / 1048576.0); }
+
+/// Pixel ray r = ((u + 0.5 - cx)/fx, -(v + 0.5 - cy)/fy, -1): X = depth * r.
+void PointsFromDepth(const cv::Mat& depth, cv::Size size, const io::Intrinsics& k, double fallback_depth_m,
+                     cv::Mat* points) {
+  points->create(size, CV_32FC3);
+  for (int v = 0; v < size.height; ++v) {
+    const float* d = depth.empty() ? nullptr : depth.ptr<float>(v);
+    cv::Vec3f* p = points->ptr<cv::Vec3f>(v);
+    for (int u = 0; u < size.width; ++u) {
+      const double z = (d && d[u] > 0) ? d[u] : fallback_depth_m;
+      p[u] = cv::Vec3f(static_cast<float>(z * (u + 0.5 - k.cx) / k.fx), static_cast<float>(-z * (v + 0.5 - k.cy) / k.fy),
+                       static_cast<float>(-z));
+    }
+  }
+}
+
+double MeanChangeDeg(const cv::Mat& a, const cv::Mat& b, const cv::Mat& conf_a, const cv::Mat& conf_b) {
+  double sum = 0;
+  int64_t n = 0;
+  for (int v = 0; v < a.rows; ++v) {
+    const cv::Vec3f* pa = a.ptr<cv::Vec3f>(v);
+    const cv::Vec3f* pb = b.ptr<cv::Vec3f>(v);
+    const float* ca = conf_a.ptr<float>(v);
+    const float* cb = conf_b.ptr<float>(v);
+    for (int u = 0; u < a.cols; ++u) {
+      if (!(ca[u] > 0) || !(cb[u] > 0)) continue;
+      sum += AngleDeg({pa[u][0], pa[u][1], pa[u][2]}, {pb[u][0], pb[u][1], pb[u][2]});
+      ++n;
+    }
+  }
+  return n > 0 ? sum / n : 0.0;
+}
+
+}  // namespace
+
+io::Status ValidateNormalsOptions(const NormalsOptions& o) {
+  LUMENRIG_RETURN_IF_ERROR(ValidatePsOptions(o.ps));
+  if (o.mem_budget_bytes <= 0)
+    return io::Status::BadInput(fmt::format("--mem-budget: must be positive (got {})", o.mem_budget_bytes));
+  if (!(o.reference_depth_m >= 0))
+    return io::Status::BadInput(fmt::format("reference depth: must be >= 0 metres (got {})", o.reference_depth_m));
+  if (!(o.near_field_tolerance_deg > 0) || o.near_field_max_iterations < 1)
+    return io::Status::BadInput("near-field iteration: tolerance must be > 0 and iterations >= 1");
+  return io::Status::Ok();
+}
+
+io::Expected<int64_t> ParseByteSize(const std::string& text) {
+  size_t pos = 0;
+  double value = 0;
+  try {
+    value = std::stod(text, &pos);
+  } catch (...) {
+    return io::Status::BadInput(fmt::format("--mem-budget: '{}' is not a size (e.g. 1G, 512M, 1073741824)", text));
+  }
+  std::string unit = text.substr(pos);
+  for (auto& c : unit) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
+  double scale = 1;
+  if (unit.empty() || unit == "B") scale = 1;
+  else if (unit == "K" || unit == "KB" || unit == "KIB") scale = 1024.0;
+  else if (unit == "M" || unit == "MB" || unit == "MIB") scale = 1024.0 * 1024;
+  else if (unit == "G" || unit == "GB" || unit == "GIB") scale = 1024.0 * 1024 * 1024;
+  else if (unit == "T" || unit == "TB" || unit == "TIB") scale = 1024.0 * 1024 * 1024 * 1024;
+  else
+    return io::Status::BadInput(fmt::format("--mem-budget: unknown unit '{}' in '{}' (use K, M, G or T)", unit, text));
+  if (!(value > 0)) return io::Status::BadInput(fmt::format("--mem-budget: '{}' must be positive", text));
+  return static_cast<int64_t>(value * scale);
+}
+
+io::Status SolveNormals(const io::Session& session, const std::string& camera_id, const NormalsOptions& options,
+                        NormalsResult* out, int threads) {
+  LUMENRIG_RETURN_IF_ERROR(ValidateNormalsOptions(options));
+  const std::string& where = session.path.empty() ? std::string("session.json") : session.path;
+  if (session.cameras.empty()) return io::Status::BadInput(fmt::format("{}: cameras: no camera", where));
+  int ci = 0;
+  if (!camera_id.empty()) {
+    ci = -1;
+    for (size_t i = 0; i < session.cameras.size(); ++i)
+      if (session.cameras[i].id == camera_id) ci = static_cast<int>(i);
+    if (ci < 0) return io::Status::BadInput(fmt::format("{}: cameras: no camera with id '{}'", where, camera_id));
+  }
+  const io::Camera& cam = session.cameras[static_cast<size_t>(ci)];
+  const std::string key = fmt::format("cameras[{}]", ci);
+  const int n = static_cast<int>(cam.olat.size());
+  if (n < 3)
+    return io::Status::BadInput(
+        fmt::format("{}: {}.olat: {} frame(s); photometric stereo needs at least 3 lights", where, key, n));
+
+  // Lights in the camera frame.
+  const std::string rig_where = session.rig.path.empty() ? std::string("rig.json") : session.rig.path;
+  std::vector<const io::Light*> lights;
+  bool any_position = false, any_direction = false;
+  for (const auto& f : cam.olat) {
+    const int idx = session.rig.IndexOfId(f.light);
+    if (idx < 0) return io::Status::BadInput(fmt::format("{}: {}.olat: unknown light id {}", where, key, f.light));
+    lights.push_back(&session.rig.lights[static_cast<size_t>(idx)]);
+    any_position |= lights.back()->position.has_value();
+    any_direction |= lights.back()->direction.has_value();
+  }
+  if (any_position && any_direction)
+    return io::Status::BadInput(fmt::format(
+        "{}: lights: the lights of {} mix direction and position; the normals stage needs one kind", rig_where, key));
+  const bool near = any_position;
+  if (near && !cam.intrinsics)
+    return io::Status::BadInput(fmt::format(
+        "{}: {}.intrinsics: required for near-field lights (the rig gives light positions)", where, key));
+  double reference_depth_m = options.reference_depth_m;
+  if (reference_depth_m <= 0 && cam.has_camera_from_rig)
+    reference_depth_m = cam.camera_from_rig.block<3, 1>(0, 3).norm();
+  if (near && !(reference_depth_m > 0))
+    return io::Status::BadInput(fmt::format(
+        "{}: {}.camera_from_rig: required for near-field lights (it places the subject at a reference depth)", where,
+        key));
+  BlockLights block_lights;
+  if (near) {
+    block_lights.positions_m.resize(n, 3);
+    for (int i = 0; i < n; ++i) {
+      const Eigen::Vector4d p(lights[i]->position->x(), lights[i]->position->y(), lights[i]->position->z(), 1.0);
+      block_lights.positions_m.row(i) = (cam.camera_from_rig * p).head<3>().cast<float>().transpose();
+    }
+  } else {
+    block_lights.directions.resize(n, 3);
+    for (int i = 0; i < n; ++i)
+      block_lights.directions.row(i) = io::LightDirectionInCamera(*lights[i], cam).cast<float>().transpose();
+  }
+  auto solver = PsSolver::Create(block_lights, options.ps);
+  if (!solver.ok()) return solver.status().WithPrefix(fmt::format("{}: lights of {}", rig_where, key));
+  // Coplanarity of near-field lights: check the directions from the subject centre.
+  if (near) {
+    BlockLights from_centre;
+    from_centre.directions.resize(n, 3);
+    const Eigen::Vector3f centre(0, 0, static_cast<float>(-reference_depth_m));
+    for (int i = 0; i < n; ++i)
+      from_centre.directions.row(i) = (block_lights.positions_m.row(i).transpose() - centre).normalized().transpose();
+    auto check = PsSolver::Create(from_centre, options.ps);
+    if (!check.ok()) return check.status().WithPrefix(fmt::format("{}: lights of {}", rig_where, key));
+  }
+
+  // Frame geometry from the first frame; readers stay open for block-based
+  // formats (OpenEXR) and are reopened per band for whole-image formats.
+  const io::DecodeOptions decode = io::DecodeOptionsFor(session);
+  auto first = io::BandReader::Open(cam.olat[0].path, decode);
+  if (!first.ok()) return first.status();
+  const io::ImageInfo info = (*first)->info();
+  const int width = info.width, height = info.height, channels = info.channels;
+  const bool keep_open = info.lines_per_block < height;
+  std::vector<std::unique_ptr<io::BandReader>> readers(static_cast<size_t>(n));
+  if (keep_open) {
+    readers[0] = std::move(first).value();
+    for (int i = 1; i < n; ++i) {
+      auto r = io::BandReader::Open(cam.olat[static_cast<size_t>(i)].path, decode);
+      if (!r.ok()) return r.status();
+      const io::ImageInfo& fi = (*r)->info();
+      if (fi.width != width || fi.height != height || fi.channels != channels)
+        return io::Status::BadInput(fmt::format("{}: {}x{} with {} channel(s), but {} is {}x{} with {}",
+                                                cam.olat[static_cast<size_t>(i)].path, fi.width, fi.height,
+                                                fi.channels, cam.olat[0].path, width, height, channels));
+      readers[static_cast<size_t>(i)] = std::move(r).value();
+    }
+  } else {
+    first = io::Status::Ok();  // release the decoded frame
+  }
+
+  cv::Mat mask;
+  if (!cam.mask.empty()) {
+    auto m = io::ReadImage(cam.mask, {});
+    if (!m.ok()) return m.status();
+    if (m->cols != width || m->rows != height)
+      return io::Status::BadInput(fmt::format("{}: mask is {}x{}, frames are {}x{}", cam.mask, m->cols, m->rows, width, height));
+    cv::Mat first_channel;
+    cv::extractChannel(*m, first_channel, 0);
+    mask = first_channel > 0.0f;
+  }
+  std::unique_ptr<io::BandReader> dark_reader;
+  if (!cam.dark.empty()) {
+    auto r = io::BandReader::Open(cam.dark, decode);
+    if (!r.ok()) return r.status();
+    if ((*r)->info().width != width || (*r)->info().height != height || (*r)->info().channels != channels)
+      return io::Status::BadInput(fmt::format("{}: dark frame size or channels differ from the OLAT frames", cam.dark));
+    dark_reader = std::move(r).value();
+  }
+
+  // Memory plan (bytes). Band height depends on the budget and the view only,
+  // never on the thread count.
+  const int64_t px = static_cast<int64_t>(width) * height;
+  const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0));
+  const int64_t lpb = std::max(1, std::min(info.lines_per_block, height));
+  const int64_t reader_bytes =
+      keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
+                : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
+  const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
+  const int64_t integrate_bytes = options.integrate_depth ? fixed + px * kIntegrationBytesPerPixel : 0;
+  const int64_t band_budget = options.mem_budget_bytes - fixed - reader_bytes;
+  int64_t rows = band_budget > 0 ? band_budget / row_bytes : 0;
+  if (keep_open) rows = rows / lpb * lpb;
+  rows = std::min<int64_t>(rows, height);
+  const int64_t min_rows = keep_open ? lpb : height;
+  const int64_t needed = std::max(fixed + reader_bytes + min_rows * row_bytes, integrate_bytes);
+  if (rows < min_rows || options.mem_budget_bytes < integrate_bytes)
+    return io::Status::BadInput(fmt::format(
+        "--mem-budget {}: too small for {} frames of {}x{} ({} channel(s)); this view needs at least {}",
+        Mib(options.mem_budget_bytes), n, width, height, channels, Mib(needed)));
+  out->band_rows = static_cast<int>(rows);
+  out->bands = static_cast<int>((height + rows - 1) / rows);
+  out->planned_bytes = std::max(fixed + reader_bytes + rows * row_bytes, integrate_bytes);
+
+  out->session_id = session.Id();
+  out->camera_id = cam.id;
+  out->method = options.ps.method;
+  out->near_field = near;
+  out->lights = n;
+  out->mask = mask;
+  out->normals.create(height, width, CV_32FC3);
+  out->albedo.create(height, width, CV_32FC3);
+  out->confidence.create(height, width, CV_32FC1);
+  out->all_zero_lights.clear();
+
+  const int64_t slot = rows * width * channels;
+  std::vector<float> band(static_cast<size_t>(slot * n));
+  cv::Mat dark_band;
+  std::vector<float> frame_max(static_cast<size_t>(n), 0.0f);
+  const int nthreads = io::ResolveThreads(threads);
+  std::vector<std::vector<float>> scratch(static_cast<size_t>(nthreads));
+  std::vector<io::Status> errors(static_cast<size_t>(n));
+
+  cv::Mat points, previous_normals, previous_confidence;
+  if (near) PointsFromDepth(cv::Mat(), cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
+  const bool single_band = rows >= height;
+  const int iterations = near ? options.near_field_max_iterations : 1;
+  out->read_seconds = out->solve_seconds = out->integrate_seconds = 0;
+
+  for (int iter = 0; iter < iterations; ++iter) {
+    for (int y0 = 0; y0 < height; y0 += static_cast<int>(rows)) {
+      const int y1 = std::min(height, y0 + static_cast<int>(rows));
+      const int band_rows = y1 - y0;
+      // 1. Read and normalise every frame's rows [y0, y1).
+      if (iter == 0 || !single_band) {
+        const auto t0 = Clock::now();
+        if (dark_reader) LUMENRIG_RETURN_IF_ERROR(dark_reader->ReadRows(y0, y1, &dark_band));
+        io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
+          for (int64_t i = b; i < e; ++i) {
+            const auto& frame = cam.olat[static_cast<size_t>(i)];
+            float* dst = band.data() + i * slot;
+            cv::Mat view(band_rows, width, CV_MAKETYPE(CV_32F, channels), dst);
+            io::Status s;
+            if (keep_open) {
+              s = readers[static_cast<size_t>(i)]->ReadRows(y0, y1, &view);
+            } else {
+              auto r = io::BandReader::Open(frame.path, decode);
+              if (!r.ok()) {
+                s = r.status();
+              } else if ((*r)->info().width != width || (*r)->info().height != height ||
+                         (*r)->info().channels != channels) {
+                s = io::Status::BadInput(fmt::format("{}: {}x{} with {} channel(s), but {} is {}x{} with {}",
+                                                     frame.path, (*r)->info().width, (*r)->info().height,
+                                                     (*r)->info().channels, cam.olat[0].path, width, height, channels));
+              } else {
+                s = (*r)->ReadRows(y0, y1, &view);
+              }
+            }
+            if (s.ok() && view.data != reinterpret_cast<uchar*>(dst))
+              s = io::Status::Internal(fmt::format("{}: band reader reallocated the band buffer", frame.path));
+            if (!s.ok()) {
+              errors[static_cast<size_t>(i)] = s;
+              continue;
+            }
+            NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
+            double lo = 0, hi = 0;
+            cv::minMaxIdx(view.reshape(1), &lo, &hi);
+            frame_max[static_cast<size_t>(i)] =
+                std::max(frame_max[static_cast<size_t>(i)], static_cast<float>(std::max(std::abs(lo), std::abs(hi))));
+          }
+        });
+        for (const auto& s : errors) LUMENRIG_RETURN_IF_ERROR(s);
+        out->read_seconds += Seconds(t0, Clock::now());
+      }
+      // 2. Solve the band in fixed tiles of pixels.
+      const auto t1 = Clock::now();
+      const int64_t band_px = static_cast<int64_t>(band_rows) * width;
+      const int64_t offset = static_cast<int64_t>(y0) * width;
+      io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
+        BlockInput in;
+        in.data = band.data() + b * channels;
+        in.light_stride = slot;
+        in.pixels = e - b;
+        in.channels = channels;
+        in.mask = mask.empty() ? nullptr : mask.ptr<uint8_t>() + offset + b;
+        in.points_m = near ? points.ptr<float>() + 3 * (offset + b) : nullptr;
+        BlockOutputs o;
+        o.normals = out->normals.ptr<float>() + 3 * (offset + b);
+        o.albedo = out->albedo.ptr<float>() + 3 * (offset + b);
+        o.confidence = out->confidence.ptr<float>() + offset + b;
+        solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
+      });
+      out->solve_seconds += Seconds(t1, Clock::now());
+    }
+    if (iter == 0) {
+      bool all_zero = true;
+      for (int i = 0; i < n; ++i) {
+        if (frame_max[static_cast<size_t>(i)] > 0) all_zero = false;
+        else out->all_zero_lights.push_back(cam.olat[static_cast<size_t>(i)].light);
+      }
+      if (all_zero)
+        return io::Status::BadInput(fmt::format(
+            "{}: {}.olat: every frame is zero after black-level and dark-frame subtraction", where, key));
+    }
+    if (!near) break;
+    // 3. Near-field: depth from the normals, new surface points, repeat.
+    out->near_field_iterations = iter + 1;
+    if (iter > 0) {
+      out->near_field_change_deg = MeanChangeDeg(out->normals, previous_normals, out->confidence, previous_confidence);
+      if (out->near_field_change_deg < options.near_field_tolerance_deg) break;
+    }
+    if (iter + 1 == iterations) break;
+    const auto t2 = Clock::now();
+    IntegrationOptions io_opts;
+    io_opts.intrinsics = cam.intrinsics;
+    io_opts.reference_depth_m = reference_depth_m;
+    DepthMap depth;
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth));
+    PointsFromDepth(depth.depth, cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
+    out->normals.copyTo(previous_normals);
+    out->confidence.copyTo(previous_confidence);
+    out->integrate_seconds += Seconds(t2, Clock::now());
+  }
+  band.clear();
+  band.shrink_to_fit();
+  readers.clear();
+  points.release();
+  previous_normals.release();
+  previous_confidence.release();
+
+  if (options.integrate_depth) {
+    const auto t3 = Clock::now();
+    IntegrationOptions io_opts;
+    if (cam.intrinsics && reference_depth_m > 0) {
+      io_opts.intrinsics = cam.intrinsics;
+      io_opts.reference_depth_m = reference_depth_m;
+    }
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &out->depth));
+    out->integrate_seconds += Seconds(t3, Clock::now());
+  }
+  return io::Status::Ok();
+}
+
+std::vector<std::string> NormalsOutputNames(const NormalsResult& result) {
+  std::vector<std::string> names = {"normals.exr", "albedo.exr", "confidence.exr"};
+  if (!result.depth.depth.empty()) names.push_back("depth.exr");
+  names.push_back("normals_preview.png");
+  return names;
+}
+
+cv::Mat NormalsPreview(const NormalsResult& r) {
+  cv::Mat n8(r.normals.size(), CV_8UC3);
+  for (int v = 0; v < r.normals.rows; ++v) {
+    const cv::Vec3f* p = r.normals.ptr<cv::Vec3f>(v);
+    cv::Vec3b* q = n8.ptr<cv::Vec3b>(v);
+    for (int u = 0; u < r.normals.cols; ++u) {
+      const bool zero = p[u][0] == 0 && p[u][1] == 0 && p[u][2] == 0;
+      for (int c = 0; c < 3; ++c) {
+        const float x = zero ? 0.0f : std::clamp((p[u][c] + 1.0f) * 0.5f, 0.0f, 1.0f);
+        q[u][2 - c] = static_cast<uint8_t>(std::lround(x * 255.0f));  // RGB -> BGR
+      }
+    }
+  }
+  cv::Mat a8 = io::ToPreview8(r.albedo);
+  cv::Mat d8 = cv::Mat::zeros(r.normals.size(), CV_8UC3);
+  if (!r.depth.depth.empty()) {
+    cv::Mat valid = r.confidence > 0;
+    if (!r.mask.empty()) valid &= r.mask;
+    double lo = 0, hi = 0;
+    cv::minMaxLoc(r.depth.depth, &lo, &hi, nullptr, nullptr, valid);
+    if (hi > lo) {
+      cv::Mat g;
+      r.depth.depth.convertTo(g, CV_8U, -255.0 / (hi - lo), 255.0 * hi / (hi - lo));  // near = bright
+      g.setTo(0, valid == 0);
+      cv::cvtColor(g, d8, cv::COLOR_GRAY2BGR);
+    }
+  }
+  cv::Mat out;
+  cv::hconcat(std::vector<cv::Mat>{n8, a8, d8}, out);
+  return out;
+}
+
+io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
+                               const std::map<std::string, std::string>& provenance, bool overwrite) {
+  const auto names = NormalsOutputNames(result);
+  for (const auto& name : names) LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+  io::ExrWriteOptions o;
+  o.pixel_type = io::PixelType::kFloat;
+  o.overwrite = overwrite;
+  o.attributes = provenance;
+  o.attributes["lumenrig.camera"] = result.camera_id;
+  o.attributes["lumenrig.session"] = result.session_id;
+  o.attributes["lumenrig.method"] = PsMethodName(result.method);
+  o.attributes["lumenrig.lights"] = std::to_string(result.lights);
+  o.attributes["lumenrig.frame"] = "camera: +x right, +y up, +z toward the viewer";
+  auto path = [&](const char* name) { return (fs::path(out_dir) / name).string(); };
+  {
+    io::ExrWriteOptions on = o;
+    on.channel_names = {"R", "G", "B"};
+    on.attributes["lumenrig.content"] = "unit normal nx,ny,nz in R,G,B; 0 where unsolved or outside the mask";
+    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("normals.exr"), result.normals, on));
+  }
+  {
+    io::ExrWriteOptions oa = o;
+    oa.attributes["lumenrig.content"] = "diffuse albedo, linear RGB (Lambertian reflectance 0..1)";
+    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("albedo.exr"), result.albedo, oa));
+  }
+  {
+    io::ExrWriteOptions oc = o;
+    oc.attributes["lumenrig.content"] =
+        "confidence 0..1 from inlier count, light-matrix conditioning and residual; 0 where the solve failed";
+    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("confidence.exr"), result.confidence, oc));
+  }
+  if (!result.depth.depth.empty()) {
+    io::ExrWriteOptions od = o;
+    od.attributes["lumenrig.depth_unit"] = result.depth.unit;
+    od.attributes["lumenrig.depth_method"] = result.depth.method;
+    od.attributes["lumenrig.content"] =
+        result.depth.unit == "metres"
+            ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
+            : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
+    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("depth.exr"), result.depth.depth, od));
+  }
+  return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite);
+}
+
+}  // namespace lumenrig::solvers

@@ -1,0 +1,594 @@
+#include "lumenrig/solvers/photometric_stereo.h"
+
+#include <algorithm>
+#include <cmath>
+#include <limits>
+#include <type_traits>
+
+#include <Eigen/Dense>
+#include <fmt/format.h>
+
+#include "lumenrig/capture_io/color.h"
+#include "lumenrig/capture_io/parallel.h"
+#include "lumenrig/solvers/light_matrix.h"
+
+namespace lumenrig::solvers {
+namespace {
+
+constexpr float kPi = 3.14159265358979323846f;
+constexpr double kMaxCondition = 1e6;  // coplanar-light error threshold
+constexpr int kSubTile = 32;           // pixels processed together by the per-pixel path
+
+/// Gray value of a normalised RGB sample (BT.709 luminance weights).
+inline float Gray3(const float* rgb) { return io::kBt709R * rgb[0] + io::kBt709G * rgb[1] + io::kBt709B * rgb[2]; }
+
+/// Solves the symmetric 3x3 system A g = b (A given by its 6 upper entries
+/// a00 a01 a02 a11 a12 a22) by the adjugate in double precision. Returns
+/// false when A is singular relative to its scale.
+bool Solve3(const double a[6], const double b[3], double g[3]) {
+  const double c00 = a[3] * a[5] - a[4] * a[4];
+  const double c01 = a[2] * a[4] - a[1] * a[5];
+  const double c02 = a[1] * a[4] - a[2] * a[3];
+  const double det = a[0] * c00 + a[1] * c01 + a[2] * c02;
+  const double scale = a[0] + a[3] + a[5];
+  if (!(std::abs(det) > 1e-12 * scale * scale * scale)) return false;
+  const double c11 = a[0] * a[5] - a[2] * a[2];
+  const double c12 = a[1] * a[2] - a[0] * a[4];
+  const double c22 = a[0] * a[3] - a[1] * a[1];
+  const double inv = 1.0 / det;
+  g[0] = (c00 * b[0] + c01 * b[1] + c02 * b[2]) * inv;
+  g[1] = (c01 * b[0] + c11 * b[1] + c12 * b[2]) * inv;
+  g[2] = (c02 * b[0] + c12 * b[1] + c22 * b[2]) * inv;
+  return std::isfinite(g[0]) && std::isfinite(g[1]) && std::isfinite(g[2]);
+}
+
+/// 2-norm condition number of a matrix V whose Gram matrix V^T V is `a`.
+double ConditionFromGram(const double a[6]) {
+  Eigen::Matrix3d m;
+  m << a[0], a[1], a[2], a[1], a[3], a[4], a[2], a[4], a[5];
+  Eigen::SelfAdjointEigenSolver<Eigen::Matrix3d> es;
+  es.computeDirect(m, Eigen::EigenvaluesOnly);
+  const double lo = es.eigenvalues()(0), hi = es.eigenvalues()(2);
+  if (!(lo > 1e-12 * hi)) return std::numeric_limits<double>::infinity();
+  return std::sqrt(hi / lo);
+}
+
+void WriteZero(const BlockOutputs& out, int64_t k) {
+  for (int c = 0; c < 3; ++c) {
+    out.normals[3 * k + c] = 0.0f;
+    if (out.albedo) out.albedo[3 * k + c] = 0.0f;
+  }
+  if (out.confidence) out.confidence[k] = 0.0f;
+}
+
+}  // namespace
+
+io::Expected<PsMethod> ParsePsMethod(const std::string& name) {
+  if (name == "lsq") return PsMethod::kLeastSquares;
+  if (name == "robust") return PsMethod::kRobust;
+  return io::Status::BadInput(fmt::format("--method: unknown method '{}' (expected lsq or robust)", name));
+}
+
+const char* PsMethodName(PsMethod method) { return method == PsMethod::kLeastSquares ? "lsq" : "robust"; }
+
+io::Status ValidatePsOptions(const PsOptions& o) {
+  auto bad = [](const char* what, double v) {
+    return io::Status::BadInput(fmt::format("photometric stereo option {}: invalid value {}", what, v));
+  };
+  if (!(o.dark_fraction >= 0 && o.dark_fraction <= 0.9)) return bad("dark_fraction", o.dark_fraction);
+  if (!(o.bright_fraction >= 0 && o.bright_fraction <= 0.9)) return bad("bright_fraction", o.bright_fraction);
+  if (!(o.dark_fraction + o.bright_fraction < 0.9)) return bad("dark_fraction + bright_fraction", o.dark_fraction + o.bright_fraction);
+  if (o.irls_iterations < 0 || o.irls_iterations > 50) return bad("irls_iterations", o.irls_iterations);
+  if (!(o.tukey_c > 0)) return bad("tukey_c", o.tukey_c);
+  if (!(o.shadow_floor >= 0 && o.shadow_floor < 1)) return bad("shadow_floor", o.shadow_floor);
+  if (!(o.min_relative_scale > 0)) return bad("min_relative_scale", o.min_relative_scale);
+  if (!(o.min_signal >= 0)) return bad("min_signal", o.min_signal);
+  return io::Status::Ok();
+}
+
+float PsConfidence(int inliers, double condition, double relative_residual) {
+  if (inliers < 3 || !std::isfinite(condition) || !std::isfinite(relative_residual)) return 0.0f;
+  const double c_count = std::clamp((inliers - 2) / 4.0, 0.0, 1.0);
+  const double c_cond = std::clamp(std::log(1e3 / condition) / std::log(1e3 / 5.0), 0.0, 1.0);
+  const double r = relative_residual / 0.1;
+  const double c_res = 1.0 / (1.0 + r * r);
+  return static_cast<float>(c_count * c_cond * c_res);
+}
+
+io::Expected<PsSolver> PsSolver::Create(const BlockLights& lights, const PsOptions& options) {
+  LUMENRIG_RETURN_IF_ERROR(ValidatePsOptions(options));
+  PsSolver s;
+  s.options_ = options;
+  s.lights_ = lights;
+  const int n = lights.count();
+  if (n < 3)
+    return io::Status::BadInput(
+        fmt::format("photometric stereo needs at least 3 lights, got {}", n));
+  if (!lights.near_field()) {
+    const Eigen::MatrixXd l = lights.directions.cast<double>();
+    s.condition_ = ConditionNumber(l);
+    if (!(s.condition_ < kMaxCondition))
+      return io::Status::BadInput(fmt::format(
+          "light directions are coplanar or degenerate (condition number {:.3g} of the {} x 3 light matrix)",
+          s.condition_, n));
+    const Eigen::MatrixXd pinv = l.completeOrthogonalDecomposition().pseudoInverse();
+    s.pinv_ = pinv.cast<float>();
+    s.gram_ = (l.transpose() * l).cast<float>();
+  }
+  return s;
+}
+
+void PsSolver::SolveBlock(const BlockInput& in, const BlockOutputs& out, std::vector<float>* scratch) const {
+  if (in.pixels <= 0) return;
+  if (options_.method == PsMethod::kLeastSquares && !lights_.near_field()) {
+    SolveLeastSquaresDistant(in, out, scratch);
+  } else {
+    SolvePerPixel(in, out, scratch);
+  }
+}
+
+// Least squares for distant lights: G (3 x K*C) = pinv(L) (3 x N) * I (N x K*C),
+// one GEMM for every channel of every pixel of a sub-block; the gray scaled
+// normal is the BT.709 combination of the channel columns (the product is
+// linear). Residual per channel from |I_c|^2 - g_c^T (L^T L) g_c (least-squares
+// identity), with the column sums of squares taken while the sub-block is
+// still in cache.
+void PsSolver::SolveLeastSquaresDistant(const BlockInput& in, const BlockOutputs& out,
+                                        std::vector<float>* scratch) const {
+  // Eigen's GEMM kernel takes a different summation path for the last
+  // (n mod 4) columns, so products are formed for multiples of kGemmPixels
+  // pixels and a tail is padded with zeros to that width: every column goes
+  // through the same path and a pixel's result does not depend on where a
+  // band or tile boundary falls.
+  constexpr int64_t kGemmPixels = 4;
+  constexpr int64_t kSubBlock = 256;  // pixels per GEMM (multiple of kGemmPixels)
+  const int n = lights_.count();
+  const int c_count = in.channels;
+  scratch->resize(static_cast<size_t>(kSubBlock * c_count * 6 + n * kGemmPixels * c_count));
+  float* g_data = scratch->data();
+  float* energy = g_data + 3 * kSubBlock * c_count;
+  float* sum = energy + kSubBlock * c_count;
+  float* lit = sum + kSubBlock * c_count;
+  float* pad_data = lit + kSubBlock * c_count;
+  const float floor = static_cast<float>(options_.min_signal);
+  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  using RowMajorMap = Eigen::Map<const RowMajor, 0, Eigen::OuterStride<>>;
+
+  for (int64_t k0 = 0; k0 < in.pixels; k0 += kSubBlock) {
+    const int64_t k_count = std::min(kSubBlock, in.pixels - k0);
+    const int64_t cols = k_count * c_count;
+    const float* data = in.data + k0 * c_count;
+    Eigen::Map<Eigen::MatrixXf> g(g_data, 3, cols);
+    const int64_t main_pixels = k_count / kGemmPixels * kGemmPixels;
+    if (main_pixels > 0) {
+      RowMajorMap stack(data, n, main_pixels * c_count, Eigen::OuterStride<>(in.light_stride));
+      g.leftCols(main_pixels * c_count).noalias() = pinv_ * stack;
+    }
+    if (main_pixels < k_count) {
+      const int64_t tail = (k_count - main_pixels) * c_count;
+      Eigen::Map<RowMajor> pad(pad_data, n, kGemmPixels * c_count);
+      pad.setZero();
+      for (int i = 0; i < n; ++i)
+        std::copy(data + i * in.light_stride + main_pixels * c_count, data + i * in.light_stride + cols,
+                  pad.row(i).data());
+      const Eigen::MatrixXf g_pad = pinv_ * pad;
+      g.rightCols(tail) = g_pad.leftCols(tail);
+    }
+
+    // Column sums of squares, sums and lit counts (contiguous, vectorised).
+    std::fill(energy, energy + 3 * kSubBlock * c_count, 0.0f);
+    for (int i = 0; i < n; ++i) {
+      const float* row = data + i * in.light_stride;
+      for (int64_t j = 0; j < cols; ++j) {
+        const float x = row[j];
+        energy[j] += x * x;
+        sum[j] += x;
+        lit[j] += x > floor ? 1.0f : 0.0f;
+      }
+    }
+
+    for (int64_t kk = 0; kk < k_count; ++kk) {
+      const int64_t k = k0 + kk;
+      if (in.mask && in.mask[k] == 0) {
+        WriteZero(out, k);
+        continue;
+      }
+      Eigen::Vector3f gg;
+      float e_total = 0, s_total = 0, r2_total = 0, lit_max = 0;
+      for (int c = 0; c < c_count; ++c) {
+        const int64_t j = kk * c_count + c;
+        const Eigen::Vector3f gc = g.col(j);
+        e_total += energy[j];
+        s_total += sum[j];
+        lit_max = std::max(lit_max, lit[j]);
+        r2_total += std::max(0.0f, energy[j] - gc.dot(gram_ * gc));
+      }
+      if (c_count == 3) {
+        gg = io::kBt709R * g.col(3 * kk) + io::kBt709G * g.col(3 * kk + 1) + io::kBt709B * g.col(3 * kk + 2);
+      } else {
+        gg = g.col(kk);
+      }
+      const float norm = gg.norm();
+      if (!std::isfinite(norm) || !std::isfinite(e_total) || !(norm > 0.0f) || !(s_total > floor)) {
+        WriteZero(out, k);
+        continue;
+      }
+      const Eigen::Vector3f nrm = gg / norm;
+      for (int c = 0; c < 3; ++c) out.normals[3 * k + c] = nrm[c];
+      if (out.albedo) {
+        for (int c = 0; c < 3; ++c) {
+          const float a = c_count == 3 ? kPi * nrm.dot(g.col(3 * kk + c)) : kPi * norm;
+          out.albedo[3 * k + c] = a;
+        }
+      }
+      if (out.confidence) {
+        // RMS residual over lights and channels relative to the mean intensity.
+        const double rel = std::sqrt(static_cast<double>(c_count) * n * r2_total) / s_total;
+        out.confidence[k] = PsConfidence(static_cast<int>(lit_max), condition_, rel);
+      }
+    }
+  }
+}
+
+// Per-pixel path (robust; near-field least squares and robust). Pixels are
+// processed kSubTile at a time in structure-of-arrays form so the loops over
+// pixels vectorise; every pixel's arithmetic is independent of its neighbours.
+namespace {
+template <bool near>
+void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, const BlockInput& in,
+                       const BlockOutputs& out, std::vector<float>* scratch) {
+  constexpr int T = kSubTile;
+  const int n = lights_.count();
+  const int c_count = in.channels;
+  const bool robust = options_.method == PsMethod::kRobust;
+  const size_t nt = static_cast<size_t>(n) * T;
+  // y, valid/weight, vx, vy, vz (near-field only)
+  scratch->resize(nt * (near ? 5 : 2));
+  (void)robust;
+  float* y = scratch->data();
+  float* w = y + nt;
+  float* vx = w + nt;
+  float* vy = vx + nt;
+  float* vz = vy + nt;
+
+  const float shadow_floor = static_cast<float>(options_.shadow_floor);
+  const float min_signal = static_cast<float>(options_.min_signal);
+  const float* lx = nullptr;
+  Eigen::Matrix<float, Eigen::Dynamic, 3, Eigen::ColMajor> dirs;
+  if constexpr (!near) {
+    dirs = lights_.directions;
+    lx = dirs.data();
+  }
+  const float* ly = lx ? lx + n : nullptr;
+  const float* lz = lx ? lx + 2 * n : nullptr;
+
+  for (int64_t k0 = 0; k0 < in.pixels; k0 += T) {
+    const int tn = static_cast<int>(std::min<int64_t>(T, in.pixels - k0));
+    bool any = in.mask == nullptr;
+    for (int t = 0; t < tn && !any; ++t) any = in.mask[k0 + t] != 0;
+    if (!any) {
+      for (int t = 0; t < tn; ++t) WriteZero(out, k0 + t);
+      continue;
+    }
+    // 1. Gather gray values; non-finite samples get validity 0.
+    float ymax[T], nvalid[T];
+    std::fill(ymax, ymax + T, 0.0f);
+    std::fill(nvalid, nvalid + T, 0.0f);
+    for (int i = 0; i < n; ++i) {
+      const float* row = in.data + i * in.light_stride + k0 * c_count;
+      float* yi = y + static_cast<size_t>(i) * T;
+      float* wi = w + static_cast<size_t>(i) * T;
+      if (c_count == 3) {
+        for (int t = 0; t < tn; ++t) yi[t] = Gray3(row + 3 * t);
+      } else {
+        for (int t = 0; t < tn; ++t) yi[t] = row[t];
+      }
+      for (int t = 0; t < tn; ++t) {
+        const float v = yi[t];
+        // NaN and +-Inf fail this comparison (branch-free finiteness test).
+        const float ok = static_cast<float>(std::abs(v) <= std::numeric_limits<float>::max());
+        yi[t] = ok > 0.0f ? v : 0.0f;
+        wi[t] = ok;
+        ymax[t] = std::max(ymax[t], yi[t]);
+        nvalid[t] += ok;
+      }
+    }
+    // 2. Light vectors per pixel (near-field): v = (p - x) / |p - x|^3.
+    if constexpr (near) {
+      for (int i = 0; i < n; ++i) {
+        const float px = lights_.positions_m(i, 0), py = lights_.positions_m(i, 1), pz = lights_.positions_m(i, 2);
+        for (int t = 0; t < tn; ++t) {
+          const float* x = in.points_m + 3 * (k0 + t);
+          const float dx = px - x[0], dy = py - x[1], dz = pz - x[2];
+          const float r2 = dx * dx + dy * dy + dz * dz;
+          const float inv = 1.0f / (r2 * std::sqrt(r2));
+          vx[i * T + t] = dx * inv;
+          vy[i * T + t] = dy * inv;
+          vz[i * T + t] = dz * inv;
+        }
+      }
+    }
+    auto lvx = [&](int i, int t) {
+      if constexpr (near) return vx[i * T + t]; else return lx[i];
+    };
+    auto lvy = [&](int i, int t) {
+      if constexpr (near) return vy[i * T + t]; else return ly[i];
+    };
+    auto lvz = [&](int i, int t) {
+      if constexpr (near) return vz[i * T + t]; else return lz[i];
+    };
+
+    // 3. Initial inlier set.
+    float floor_abs[T], lo_a[T], hi_b[T];
+    for (int t = 0; t < T; ++t) {
+      floor_abs[t] = std::max(min_signal, shadow_floor * ymax[t]);
+      lo_a[t] = -1.0f;
+      hi_b[t] = std::numeric_limits<float>::infinity();
+    }
+    if (robust) {
+      // Order statistics over the lit samples (above the shadow floor):
+      // thresholds at the dark_fraction and (1 - bright_fraction) ranks,
+      // found by bisection on the value (resolution ymax / 2^kBisections)
+      // for all pixels at once.
+      constexpr int kBisections = 7;
+      float hi_a[T], lo_b[T], target_dark[T], target_bright[T], nlit[T];
+      std::fill(nlit, nlit + T, 0.0f);
+      for (int i = 0; i < n; ++i) {
+        const float* yi = y + static_cast<size_t>(i) * T;
+        for (int t = 0; t < T; ++t) nlit[t] += static_cast<float>(yi[t] > floor_abs[t]);
+      }
+      for (int t = 0; t < T; ++t) {
+        lo_a[t] = 0.0f;
+        hi_a[t] = ymax[t];
+        lo_b[t] = 0.0f;
+        hi_b[t] = ymax[t];
+        target_dark[t] = std::floor(static_cast<float>(options_.dark_fraction) * nlit[t]);
+        target_bright[t] = std::floor(static_cast<float>(options_.bright_fraction) * nlit[t]);
+      }
+      for (int it = 0; it < kBisections; ++it) {
+        float mid_a[T], mid_b[T], below[T], above[T];
+        for (int t = 0; t < T; ++t) {
+          mid_a[t] = 0.5f * (lo_a[t] + hi_a[t]);
+          mid_b[t] = 0.5f * (lo_b[t] + hi_b[t]);
+          below[t] = 0.0f;
+          above[t] = 0.0f;
+        }
+        for (int i = 0; i < n; ++i) {
+          const float* yi = y + static_cast<size_t>(i) * T;
+          for (int t = 0; t < T; ++t) {
+            const float yv = yi[t];
+            const float lit = static_cast<float>(yv > floor_abs[t]);
+            below[t] += static_cast<float>(yv < mid_a[t]) * lit;
+            above[t] += static_cast<float>(yv > mid_b[t]) * lit;
+          }
+        }
+        for (int t = 0; t < T; ++t) {
+          // Dark threshold: the largest value with at most target samples below.
+          const bool dark_ok = below[t] <= target_dark[t];
+          lo_a[t] = dark_ok ? mid_a[t] : lo_a[t];
+          hi_a[t] = dark_ok ? hi_a[t] : mid_a[t];
+          // Bright threshold: the smallest value with at most target samples above.
+          const bool bright_ok = above[t] <= target_bright[t];
+          hi_b[t] = bright_ok ? mid_b[t] : hi_b[t];
+          lo_b[t] = bright_ok ? lo_b[t] : mid_b[t];
+        }
+      }
+    }
+
+    // 4. Weighted fits. kMode 0: weights as stored (validity); 1: the
+    // order-statistics inlier set; 2: Tukey biweight of the residual under
+    // the current fit with the current scale, samples in attached shadow
+    // (n.v <= 0) or under the shadow floor at 0. Mode 2 also accumulates the
+    // residual of the previous weights for the next scale (one pass).
+    float a[6][T], b[3][T], gx[T], gy[T], gz[T], scale[T], se[T], sw[T], sy[T];
+    bool solved[T];
+    const float c_tukey = static_cast<float>(options_.tukey_c);
+    const float min_rel = static_cast<float>(options_.min_relative_scale);
+    auto fit = [&](auto mode) {
+      constexpr int kMode = decltype(mode)::value;
+      for (int j = 0; j < 6; ++j) std::fill(a[j], a[j] + T, 0.0f);
+      for (int j = 0; j < 3; ++j) std::fill(b[j], b[j] + T, 0.0f);
+      if constexpr (kMode == 2) {
+        for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
+      }
+      for (int i = 0; i < n; ++i) {
+        const float* yi = y + static_cast<size_t>(i) * T;
+        float* wi = w + static_cast<size_t>(i) * T;
+        for (int t = 0; t < T; ++t) {
+          const float x = lvx(i, t), yv = lvy(i, t), z = lvz(i, t);
+          const float yy = yi[t];
+          float ww = wi[t];
+          if constexpr (kMode == 1) {
+            // Bitwise & (no short circuit) keeps the loop branch-free.
+            const float keep = static_cast<float>((yy >= lo_a[t]) & (yy <= hi_b[t]) & (yy > floor_abs[t]));
+            ww *= keep;
+            wi[t] = ww;
+          } else if constexpr (kMode == 2) {
+            const float pred = x * gx[t] + yv * gy[t] + z * gz[t];
+            const float e = yy - pred;
+            se[t] += ww * e * e;
+            sw[t] += ww;
+            sy[t] += ww * yy;
+            const float u = e / (c_tukey * scale[t]);
+            const float tw = 1.0f - u * u;
+            // Non-finite samples were stored as 0, so the floor test drops them.
+            const float usable = static_cast<float>((yy > floor_abs[t]) & (pred > 0.0f) & (u * u < 1.0f));
+            ww = usable * tw * tw;
+            wi[t] = ww;
+          }
+          const float wx = ww * x, wy = ww * yv, wz = ww * z;
+          a[0][t] += wx * x;
+          a[1][t] += wx * yv;
+          a[2][t] += wx * z;
+          a[3][t] += wy * yv;
+          a[4][t] += wy * z;
+          a[5][t] += wz * z;
+          b[0][t] += wx * yy;
+          b[1][t] += wy * yy;
+          b[2][t] += wz * yy;
+        }
+      }
+      for (int t = 0; t < tn; ++t) {
+        double ad[6], bd[3], gd[3];
+        for (int j = 0; j < 6; ++j) ad[j] = a[j][t];
+        for (int j = 0; j < 3; ++j) bd[j] = b[j][t];
+        solved[t] = Solve3(ad, bd, gd);
+        gx[t] = solved[t] ? static_cast<float>(gd[0]) : 0.0f;
+        gy[t] = solved[t] ? static_cast<float>(gd[1]) : 0.0f;
+        gz[t] = solved[t] ? static_cast<float>(gd[2]) : 0.0f;
+      }
+    };
+    auto update_scale = [&]() {
+      for (int t = 0; t < T; ++t) {
+        const float rms = sw[t] > 0 ? std::sqrt(se[t] / sw[t]) : 0.0f;
+        const float mean = sw[t] > 0 ? sy[t] / sw[t] : 0.0f;
+        scale[t] = std::max(rms, min_rel * mean);
+      }
+    };
+    if (!robust) {
+      fit(std::integral_constant<int, 0>());
+    } else {
+      fit(std::integral_constant<int, 1>());
+      // Initial scale: weighted RMS residual of the order-statistics fit.
+      for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
+      for (int i = 0; i < n; ++i) {
+        const float* yi = y + static_cast<size_t>(i) * T;
+        const float* wi = w + static_cast<size_t>(i) * T;
+        for (int t = 0; t < T; ++t) {
+          const float e = yi[t] - (lvx(i, t) * gx[t] + lvy(i, t) * gy[t] + lvz(i, t) * gz[t]);
+          se[t] += wi[t] * e * e;
+          sw[t] += wi[t];
+          sy[t] += wi[t] * yi[t];
+        }
+      }
+      update_scale();
+      for (int iter = 0; iter < options_.irls_iterations; ++iter) {
+        fit(std::integral_constant<int, 2>());
+        // Scale for the next pass: residual of the weights just replaced
+        // under the fit they were computed from (lagged by one pass).
+        update_scale();
+      }
+    }
+
+    // 5. Normal, per-channel albedo a_c = pi * sum w s y_c / sum w s^2 with
+    // s = n.v, inlier count, conditioning and residual.
+    for (int t = 0; t < tn; ++t) {
+      const int64_t k = k0 + t;
+      const float gn = std::sqrt(gx[t] * gx[t] + gy[t] * gy[t] + gz[t] * gz[t]);
+      const bool masked_out = in.mask && in.mask[k] == 0;
+      if (masked_out || !solved[t] || !(gn > 0.0f) || !std::isfinite(gn) || !(ymax[t] > min_signal)) {
+        WriteZero(out, k);
+        continue;
+      }
+      const float nx = gx[t] / gn, ny = gy[t] / gn, nz = gz[t] / gn;
+      out.normals[3 * k] = nx;
+      out.normals[3 * k + 1] = ny;
+      out.normals[3 * k + 2] = nz;
+      double ss = 0, sc[3] = {0, 0, 0}, se = 0, sw = 0, sy = 0;
+      int inliers = 0;
+      for (int i = 0; i < n; ++i) {
+        const float ww = w[i * T + t];
+        if (ww <= 0.0f) continue;
+        const float s = lvx(i, t) * nx + lvy(i, t) * ny + lvz(i, t) * nz;
+        const float* px = in.data + i * in.light_stride + k * c_count;
+        ss += ww * s * s;
+        for (int c = 0; c < c_count; ++c) sc[c] += ww * s * px[c];
+        const float e = y[i * T + t] - s * gn;
+        se += ww * e * e;
+        sw += ww;
+        sy += ww * y[i * T + t];
+        if (ww > 0.5f && y[i * T + t] > min_signal) ++inliers;
+      }
+      if (out.albedo) {
+        for (int c = 0; c < 3; ++c) {
+          const double num = c_count == 3 ? sc[c] : sc[0];
+          out.albedo[3 * k + c] = ss > 0 ? static_cast<float>(kPi * num / ss) : 0.0f;
+        }
+      }
+      if (out.confidence) {
+        double ad[6];
+        for (int j = 0; j < 6; ++j) ad[j] = a[j][t];
+        const double cond = ConditionFromGram(ad);
+        const double rel = sy > 0 ? std::sqrt(se / sw) / (sy / sw) : std::numeric_limits<double>::infinity();
+        out.confidence[k] = PsConfidence(inliers, cond, rel);
+      }
+    }
+  }
+}
+
+}  // namespace
+
+void PsSolver::SolvePerPixel(const BlockInput& in, const BlockOutputs& out, std::vector<float>* scratch) const {
+  if (lights_.near_field()) {
+    SolvePerPixelImpl<true>(options_, lights_, in, out, scratch);
+  } else {
+    SolvePerPixelImpl<false>(options_, lights_, in, out, scratch);
+  }
+}
+
+void NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity) {
+  if (!dark.empty()) cv::subtract(*frame, dark, *frame);
+  if (frame->channels() == 3) {
+    cv::multiply(*frame, cv::Scalar(1.0 / intensity[0], 1.0 / intensity[1], 1.0 / intensity[2]), *frame);
+  } else {
+    const double gray = io::Bt709Luminance(static_cast<float>(intensity[0]), static_cast<float>(intensity[1]),
+                                           static_cast<float>(intensity[2]));
+    *frame *= 1.0 / gray;
+  }
+}
+
+io::Status SolvePhotometricStereo(const std::vector<cv::Mat>& frames, const BlockLights& lights,
+                                  const PsOptions& options, const cv::Mat& mask, const cv::Mat& points_m,
+                                  PsMaps* out, int threads) {
+  auto solver = PsSolver::Create(lights, options);
+  if (!solver.ok()) return solver.status();
+  if (static_cast<int>(frames.size()) != lights.count())
+    return io::Status::BadInput(fmt::format("{} frames for {} lights", frames.size(), lights.count()));
+  const int rows = frames[0].rows, cols = frames[0].cols, channels = frames[0].channels();
+  for (const auto& f : frames) {
+    if (f.rows != rows || f.cols != cols || f.type() != frames[0].type() || f.depth() != CV_32F)
+      return io::Status::BadInput("frames differ in size or type (expected CV_32F, all alike)");
+  }
+  if (lights.near_field() && (points_m.rows != rows || points_m.cols != cols || points_m.type() != CV_32FC3))
+    return io::Status::BadInput("near-field solve needs a CV_32FC3 map of surface points the size of the frames");
+  // Stack frames: light i's pixels contiguous.
+  const int64_t k_count = static_cast<int64_t>(rows) * cols;
+  std::vector<float> stack(static_cast<size_t>(k_count * channels * lights.count()));
+  for (int i = 0; i < lights.count(); ++i) {
+    cv::Mat dst(rows, cols, frames[i].type(), stack.data() + i * k_count * channels);
+    frames[i].copyTo(dst);
+  }
+  cv::Mat mask8;
+  if (!mask.empty()) {
+    mask8 = mask.isContinuous() ? mask : mask.clone();
+  }
+  cv::Mat points = points_m.empty() ? points_m : (points_m.isContinuous() ? points_m : points_m.clone());
+  out->normals.create(rows, cols, CV_32FC3);
+  out->albedo.create(rows, cols, CV_32FC3);
+  out->confidence.create(rows, cols, CV_32FC1);
+  constexpr int64_t kTile = 4096;
+  const int nthreads = io::ResolveThreads(threads);
+  std::vector<std::vector<float>> scratch(static_cast<size_t>(nthreads));
+  io::ParallelFor(0, k_count, kTile, nthreads, [&](int64_t b, int64_t e) {
+    BlockInput in;
+    in.data = stack.data() + b * channels;
+    in.light_stride = k_count * channels;
+    in.pixels = e - b;
+    in.channels = channels;
+    in.mask = mask8.empty() ? nullptr : mask8.ptr<uint8_t>() + b;
+    in.points_m = points.empty() ? nullptr : points.ptr<float>() + 3 * b;
+    BlockOutputs o;
+    o.normals = out->normals.ptr<float>() + 3 * b;
+    o.albedo = out->albedo.ptr<float>() + 3 * b;
+    o.confidence = out->confidence.ptr<float>() + b;
+    solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
+  });
+  return io::Status::Ok();
+}
+
+double AngleDeg(const Eigen::Vector3f& a, const Eigen::Vector3f& b) {
+  const double d = std::clamp(static_cast<double>(a.dot(b)), -1.0, 1.0);
+  return std::acos(d) * 180.0 / M_PI;
+}
+
+}  // namespace lumenrig::solvers
