@@ -148,7 +148,8 @@ int Run(const InspectArgs& a) {
     if (!st.ok()) return ReportError(cmd, st);
     fmt::print("preview: {} (rows = samples; columns = {})\n", a.preview, fmt::join(columns, " | "));
   }
-  fmt::print("inspect: {}\n", TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
+  fmt::print("inspect: {}\n",
+             TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
   return 0;
 }
 

@@ -4,8 +4,8 @@
 #include <chrono>
 #include <cmath>
 
-#include <Eigen/Dense>
 #include <fmt/format.h>
+#include <Eigen/Dense>
 
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -181,7 +181,8 @@ io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& w
     for (int i = 0; i < n; ++i) {
       const int li = stack->light_index()[i];
       if (li < 0 || li >= wk.rows() || wk.cols() != 3) {
-        return io::Status::Internal(fmt::format("relight: weights have {} rows, frame {} uses light {}", wk.rows(), i, li));
+        return io::Status::Internal(
+            fmt::format("relight: weights have {} rows, frame {} uses light {}", wk.rows(), i, li));
       }
     }
   }
@@ -200,7 +201,8 @@ io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& w
   const int64_t scratch = int64_t{threads} * kRowsPerChunk * w * (n + k) * 4 * 2;
   int64_t rows = (options.mem_budget_bytes - scratch - stack->overhead_bytes()) / std::max<int64_t>(1, row_bytes);
   rows = std::max<int64_t>(kRowsPerChunk, rows / kRowsPerChunk * kRowsPerChunk);
-  const int band_rows = static_cast<int>(std::min<int64_t>(rows, (h + kRowsPerChunk - 1) / kRowsPerChunk * kRowsPerChunk));
+  const int band_rows =
+      static_cast<int>(std::min<int64_t>(rows, (h + kRowsPerChunk - 1) / kRowsPerChunk * kRowsPerChunk));
   relit->assign(k, cv::Mat());
   for (auto& m : *relit) m.create(h, w, CV_32FC3);
   if (stats) *stats = RelightStats{0, band_rows, 0, 0};

@@ -37,9 +37,10 @@ class PairsTest : public ::testing::Test {
   static void TearDownTestSuite() { dir_.reset(); }
   static std::string D(const std::string& name) { return *dir_ / name; }
   static std::string PairsArgs(const std::string& out, const std::string& extra = "", int seed = 11) {
-    return fmt::format("pairs {} --envs {} --out {} --count 5 --seed {} --size 24x16 --batch 2 "
-                       "--specular-exponents 1 16 {}",
-                       D("sphere"), D("envs"), out, seed, extra);
+    return fmt::format(
+        "pairs {} --envs {} --out {} --count 5 --seed {} --size 24x16 --batch 2 "
+        "--specular-exponents 1 16 {}",
+        D("sphere"), D("envs"), out, seed, extra);
   }
   static std::unique_ptr<test::TempDir> dir_;
 };
@@ -84,7 +85,8 @@ TEST_F(PairsTest, RelightCliMatchesClosedFormAndCountsClampedTexels) {
   io::ExrWriteOptions w;
   w.pixel_type = io::PixelType::kFloat;
   ASSERT_TRUE(io::WriteExr(D("smooth.exr"), map, w).ok());
-  const auto r = test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
+  const auto r =
+      test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
   ASSERT_EQ(r.exit_code, 0) << r.err;
   EXPECT_NE(r.out.find("2 texel(s)"), std::string::npos) << r.out;
   EXPECT_NE(r.out.find("peak RSS"), std::string::npos) << r.out;
@@ -112,7 +114,8 @@ TEST_F(PairsTest, RelightCliMatchesClosedFormAndCountsClampedTexels) {
   }
   EXPECT_LT(std::sqrt(num / den), 0.02);
   // Existing output without --force: exit 2, file untouched.
-  const auto again = test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
+  const auto again =
+      test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
   EXPECT_EQ(again.exit_code, 2);
 }
 

@@ -59,9 +59,9 @@ inline void WriteSphereSession(const std::string& dir, const SphereSessionSpec& 
   }
   cv::Mat albedo(n, n, CV_32FC3, cv::Scalar(0, 0, 0));
   albedo.setTo(cv::Scalar(spec.albedo.x(), spec.albedo.y(), spec.albedo.z()), alpha > 0);
-  nlohmann::json session = {{"format", "lumenrig.session/1"}, {"subject", spec.subject}, {"rig", "rig.json"},
-                            {"encoding", "linear"}, {"black_level", spec.black_level},
-                            {"cameras", nlohmann::json::array()}};
+  nlohmann::json session = {
+      {"format", "lumenrig.session/1"}, {"subject", spec.subject},         {"rig", "rig.json"},
+      {"encoding", "linear"},           {"black_level", spec.black_level}, {"cameras", nlohmann::json::array()}};
   io::ExrWriteOptions w;
   w.pixel_type = io::PixelType::kFloat;
   for (int c = 0; c < spec.cameras; ++c) {
@@ -77,7 +77,8 @@ inline void WriteSphereSession(const std::string& dir, const SphereSessionSpec& 
         for (int x = 0; x < n; ++x) {
           const cv::Vec3f nn = normals.at<cv::Vec3f>(y, x);
           const double cs = std::max(0.0, nn[0] * dirs[i].x() + nn[1] * dirs[i].y() + nn[2] * dirs[i].z());
-          for (int k = 0; k < 3; ++k) f.at<cv::Vec3f>(y, x)[k] = static_cast<float>(intensity[i](k) * spec.albedo(k) / M_PI * cs);
+          for (int k = 0; k < 3; ++k)
+            f.at<cv::Vec3f>(y, x)[k] = static_cast<float>(intensity[i](k) * spec.albedo(k) / M_PI * cs);
         }
       }
       f += cv::Scalar::all(spec.dark_offset + spec.black_level);
