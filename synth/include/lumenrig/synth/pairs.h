@@ -100,3 +100,13 @@ nlohmann::json PairsConfigJson(const PairsOptions& options);
 io::Status WritePairs(const PairsOptions& options, PairsSummary* summary = nullptr);
 
 }  // namespace lumenrig::synth
+
+namespace lumenrig::synth {
+
+/// Contact sheet PNG of a pairs file: up to `max_samples` rows (evenly
+/// spaced samples), columns input | target | albedo | normals | alpha |
+/// light_diffuse, 128 px high tiles. Refuses an existing PNG unless overwrite.
+io::Status WritePairsPreview(const std::string& h5_path, const std::string& png_path, int max_samples = 4,
+                             bool overwrite = false);
+
+}  // namespace lumenrig::synth
