@@ -18,13 +18,19 @@ dir=/tmp/lumenrig-normals-bench/view${size}x${lights}
 out=/tmp/lumenrig-normals-bench/out
 [ -f "$dir/session.json" ] || "$build/bench/normals_bench" --make-session "$dir" "$size" "$lights"
 du -sh "$dir"
-decode=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 | tee /dev/stderr | sed -n 's/.*: \([0-9.]*\) s$/\1/p')
+line=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16)
+echo "$line"
+decode=$(echo "$line" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
+decode_cpu=$(echo "$line" | sed -n 's/.*cpu \([0-9.]*\) s,.*/\1/p')
 for method in lsq robust; do
   for budget in 1G 4G; do
     log=$(NO_COLOR=1 "$build/cli/lumenrig" normals "$dir" --out "$out" --method "$method" --mem-budget "$budget" \
           --threads "$threads" --force)
-    echo "$log" | tail -2
+    echo "$log" | tail -3
     wall=$(echo "$log" | sed -n 's/^normals: wall \([0-9.]*\) s.*/\1/p')
-    echo "  -> $method, budget $budget: wall / decode = $(echo "$wall / $decode" | bc -l | cut -c1-5)"
+    rcpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s/\1/p')
+    scpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s/\2/p')
+    echo "  -> $method, budget $budget: whole stage wall / decode wall = $(echo "$wall / $decode" | bc -l | cut -c1-5);" \
+         "(read + solve) cpu / decode cpu = $(echo "($rcpu + $scpu) / $decode_cpu" | bc -l | cut -c1-5)"
   done
 done

@@ -78,13 +78,13 @@ int Run(const InspectArgs& a) {
   }
 
   if (!a.preview.empty()) {
-    io::Status st = synth::WritePairsPreview(a.file, a.preview, a.samples, a.force);
+    auto sheet = synth::PairsContactSheet(a.file, a.samples);
+    if (!sheet.ok()) return ReportError(cmd, sheet.status());
+    io::Status st = io::WritePng(a.preview, *sheet, a.force);
     if (!st.ok()) return ReportError(cmd, st);
-    fmt::print("preview: {} (rows = samples; columns = input | target | albedo | normals | alpha | light_diffuse)\n",
-               a.preview);
+    fmt::print("preview: {} (rows = samples; columns = {})\n", a.preview, fmt::join(synth::kPairsPreviewColumns, " | "));
   }
-  fmt::print("inspect: {}\n",
-             TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
+  fmt::print("inspect: {}\n", TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
   return 0;
 }
 

@@ -60,17 +60,22 @@ int RunNormals(const NormalsArgs& a) {
       {"lumenrig.source_session", session->path},
       {"lumenrig.options", fmt::format("method={} mem_budget={} band_rows={} near_field={}", a.method, *budget,
                                        result.band_rows, result.near_field ? "yes" : "no")}};
-  if (auto s = solvers::WriteNormalsOutputs(result, a.out, provenance, a.force); !s.ok()) return ReportError(name, s);
+  const auto write_start = std::chrono::steady_clock::now();
+  if (auto s = solvers::WriteNormalsOutputs(result, a.out, provenance, a.force, a.threads); !s.ok())
+    return ReportError(name, s);
+  const double write_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - write_start).count();
   for (const auto& file : solvers::NormalsOutputNames(result))
     fmt::print("{}\n", (std::filesystem::path(a.out) / file).string());
-  fmt::print("camera {}: {} lights, method {}, {} band(s) of {} rows, read {:.2f} s, solve {:.2f} s, depth {:.2f} s ({}{})\n",
+  fmt::print("camera {}: {} lights, method {}, {} band(s) of {} rows, read {:.2f} s, solve {:.2f} s, depth {:.2f} s ({}{}), write {:.2f} s\n",
              result.camera_id, result.lights, solvers::PsMethodName(result.method), result.bands, result.band_rows,
              result.read_seconds, result.solve_seconds, result.integrate_seconds,
              result.depth.depth.empty() ? "off" : result.depth.unit,
              result.near_field ? fmt::format(", near-field {} iteration(s), last change {:.3f} deg",
                                              result.near_field_iterations, result.near_field_change_deg)
-                               : "");
+                               : "",
+             write_s);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  fmt::print("cpu time: read {:.2f} s, solve {:.2f} s\n", result.read_cpu_seconds, result.solve_cpu_seconds);
   fmt::print("normals: wall {:.2f} s, peak RSS {:.0f} MiB\n", wall, PeakRssMib());
   return 0;
 }

@@ -3,8 +3,10 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <ctime>
 #include <cmath>
 #include <filesystem>
+#include <functional>
 #include <memory>
 
 #include <fmt/format.h>
@@ -26,6 +28,13 @@ constexpr int64_t kBaselineBytes = 64ll << 20;  // libraries, code, allocator sl
 constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex) or Poisson
 
 double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::duration<double>(b - a).count(); }
+
+/// CPU time of the whole process (all threads), seconds.
+double ProcessCpuSeconds() {
+  timespec ts{};
+  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
+}
 
 std::string Mib(int64_t bytes) { return fmt::format("{:.0f} MiB", bytes / 1048576.0); }
 
@@ -219,7 +228,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
                 : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
   const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
   const int64_t integrate_bytes = options.integrate_depth ? fixed + px * kIntegrationBytesPerPixel : 0;
-  const int64_t band_budget = options.mem_budget_bytes - fixed - reader_bytes;
+  // 10% of what is left is kept as slack for allocator and library overheads.
+  const int64_t band_budget = (options.mem_budget_bytes - fixed - reader_bytes) / 10 * 9;
   int64_t rows = band_budget > 0 ? band_budget / row_bytes : 0;
   if (keep_open) rows = rows / lpb * lpb;
   rows = std::min<int64_t>(rows, height);
@@ -257,6 +267,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const bool single_band = rows >= height;
   const int iterations = near ? options.near_field_max_iterations : 1;
   out->read_seconds = out->solve_seconds = out->integrate_seconds = 0;
+  out->read_cpu_seconds = out->solve_cpu_seconds = 0;
 
   for (int iter = 0; iter < iterations; ++iter) {
     for (int y0 = 0; y0 < height; y0 += static_cast<int>(rows)) {
@@ -265,6 +276,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       // 1. Read and normalise every frame's rows [y0, y1).
       if (iter == 0 || !single_band) {
         const auto t0 = Clock::now();
+        const double c0 = ProcessCpuSeconds();
         if (dark_reader) LUMENRIG_RETURN_IF_ERROR(dark_reader->ReadRows(y0, y1, &dark_band));
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
@@ -293,18 +305,17 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
               errors[static_cast<size_t>(i)] = s;
               continue;
             }
-            NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
-            double lo = 0, hi = 0;
-            cv::minMaxIdx(view.reshape(1), &lo, &hi);
-            frame_max[static_cast<size_t>(i)] =
-                std::max(frame_max[static_cast<size_t>(i)], static_cast<float>(std::max(std::abs(lo), std::abs(hi))));
+            const float largest = NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
+            frame_max[static_cast<size_t>(i)] = std::max(frame_max[static_cast<size_t>(i)], largest);
           }
         });
         for (const auto& s : errors) LUMENRIG_RETURN_IF_ERROR(s);
         out->read_seconds += Seconds(t0, Clock::now());
+        out->read_cpu_seconds += ProcessCpuSeconds() - c0;
       }
       // 2. Solve the band in fixed tiles of pixels.
       const auto t1 = Clock::now();
+      const double c1 = ProcessCpuSeconds();
       const int64_t band_px = static_cast<int64_t>(band_rows) * width;
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
@@ -322,6 +333,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
       });
       out->solve_seconds += Seconds(t1, Clock::now());
+      out->solve_cpu_seconds += ProcessCpuSeconds() - c1;
     }
     if (iter == 0) {
       bool all_zero = true;
@@ -412,7 +424,7 @@ cv::Mat NormalsPreview(const NormalsResult& r) {
 }
 
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
-                               const std::map<std::string, std::string>& provenance, bool overwrite) {
+                               const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
   const auto names = NormalsOutputNames(result);
   for (const auto& name : names) LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
@@ -425,35 +437,54 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
   o.attributes["lumenrig.method"] = PsMethodName(result.method);
   o.attributes["lumenrig.lights"] = std::to_string(result.lights);
   o.attributes["lumenrig.frame"] = "camera: +x right, +y up, +z toward the viewer";
-  auto path = [&](const char* name) { return (fs::path(out_dir) / name).string(); };
-  {
+  auto path = [&](const std::string& name) { return (fs::path(out_dir) / name).string(); };
+  // One job per file; files are compressed concurrently (each written to a
+  // temporary name and renamed, io::WriteExr / io::WritePng).
+  std::vector<std::function<io::Status()>> jobs;
+  jobs.push_back([&] {
     io::ExrWriteOptions on = o;
     on.channel_names = {"R", "G", "B"};
     on.attributes["lumenrig.content"] = "unit normal nx,ny,nz in R,G,B; 0 where unsolved or outside the mask";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("normals.exr"), result.normals, on));
-  }
-  {
+    return io::WriteExr(path("normals.exr"), result.normals, on);
+  });
+  jobs.push_back([&] {
     io::ExrWriteOptions oa = o;
     oa.attributes["lumenrig.content"] = "diffuse albedo, linear RGB (Lambertian reflectance 0..1)";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("albedo.exr"), result.albedo, oa));
-  }
-  {
+    return io::WriteExr(path("albedo.exr"), result.albedo, oa);
+  });
+  jobs.push_back([&] {
     io::ExrWriteOptions oc = o;
     oc.attributes["lumenrig.content"] =
         "confidence 0..1 from inlier count, light-matrix conditioning and residual; 0 where the solve failed";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("confidence.exr"), result.confidence, oc));
-  }
+    return io::WriteExr(path("confidence.exr"), result.confidence, oc);
+  });
   if (!result.depth.depth.empty()) {
-    io::ExrWriteOptions od = o;
-    od.attributes["lumenrig.depth_unit"] = result.depth.unit;
-    od.attributes["lumenrig.depth_method"] = result.depth.method;
-    od.attributes["lumenrig.content"] =
-        result.depth.unit == "metres"
-            ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
-            : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(path("depth.exr"), result.depth.depth, od));
+    jobs.push_back([&] {
+      io::ExrWriteOptions od = o;
+      od.attributes["lumenrig.depth_unit"] = result.depth.unit;
+      od.attributes["lumenrig.depth_method"] = result.depth.method;
+      od.attributes["lumenrig.content"] =
+          result.depth.unit == "metres"
+              ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
+              : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
+      return io::WriteExr(path("depth.exr"), result.depth.depth, od);
+    });
   }
-  return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite);
+  jobs.push_back([&] { return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite); });
+  std::vector<io::Status> status(jobs.size());
+  io::ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = jobs[static_cast<size_t>(j)]();
+  });
+  for (const auto& st : status) {
+    if (st.ok()) continue;
+    // No partial output: remove what this call wrote.
+    for (size_t j = 0; j < status.size(); ++j) {
+      std::error_code ec;
+      if (status[j].ok()) fs::remove(path(names[j]), ec);
+    }
+    return st;
+  }
+  return io::Status::Ok();
 }
 
 }  // namespace lumenrig::solvers

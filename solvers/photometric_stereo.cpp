@@ -526,15 +526,42 @@ void PsSolver::SolvePerPixel(const BlockInput& in, const BlockOutputs& out, std:
   }
 }
 
-void NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity) {
-  if (!dark.empty()) cv::subtract(*frame, dark, *frame);
-  if (frame->channels() == 3) {
-    cv::multiply(*frame, cv::Scalar(1.0 / intensity[0], 1.0 / intensity[1], 1.0 / intensity[2]), *frame);
+float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity) {
+  const int c = frame->channels();
+  float scale[3];
+  if (c == 3) {
+    for (int k = 0; k < 3; ++k) scale[k] = static_cast<float>(1.0 / intensity[k]);
   } else {
-    const double gray = io::Bt709Luminance(static_cast<float>(intensity[0]), static_cast<float>(intensity[1]),
-                                           static_cast<float>(intensity[2]));
-    *frame *= 1.0 / gray;
+    scale[0] = static_cast<float>(1.0 / io::Bt709Luminance(static_cast<float>(intensity[0]),
+                                                           static_cast<float>(intensity[1]),
+                                                           static_cast<float>(intensity[2])));
   }
+  // One pass: subtract, scale, track the largest magnitude (NaN is skipped
+  // by the comparison).
+  float largest = 0.0f;
+  for (int r = 0; r < frame->rows; ++r) {
+    float* p = frame->ptr<float>(r);
+    const float* d = dark.empty() ? nullptr : dark.ptr<float>(r);
+    const int cols = frame->cols;
+    if (c == 3) {
+      for (int j = 0; j < cols; ++j) {
+        for (int k = 0; k < 3; ++k) {
+          const float v = (p[3 * j + k] - (d ? d[3 * j + k] : 0.0f)) * scale[k];
+          p[3 * j + k] = v;
+          const float a = std::abs(v);
+          largest = largest < a ? a : largest;
+        }
+      }
+    } else {
+      for (int j = 0; j < cols; ++j) {
+        const float v = (p[j] - (d ? d[j] : 0.0f)) * scale[0];
+        p[j] = v;
+        const float a = std::abs(v);
+        largest = largest < a ? a : largest;
+      }
+    }
+  }
+  return largest;
 }
 
 io::Status SolvePhotometricStereo(const std::vector<cv::Mat>& frames, const BlockLights& lights,

@@ -1,13 +1,10 @@
 // Contact sheet of a lumenrig.pairs/1 file (used by `inspect --preview` and the demo).
 #include <algorithm>
 
-#include <fmt/format.h>
 #include <opencv2/imgproc.hpp>
 
-#include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/hdf5_reader.h"
-#include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/synth/pairs.h"
 
 namespace lumenrig::synth {
@@ -56,27 +53,24 @@ io::Expected<cv::Mat> Tile(const io::H5Reader& r, const io::H5DatasetInfo& info,
 
 }  // namespace
 
-io::Status WritePairsPreview(const std::string& h5_path, const std::string& png_path, int max_samples, bool overwrite) {
-  LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath(png_path, overwrite));
-  auto opened = io::H5Reader::Open(h5_path);
-  if (!opened.ok()) return opened.status();
-  const io::H5Reader* r = opened->get();
-  const std::vector<std::string> columns = {"input", "target", "albedo", "normals", "alpha", "light_diffuse"};
+io::Expected<cv::Mat> PairsContactSheet(const std::string& h5_path, int max_samples) {
+  auto r = io::H5Reader::Open(h5_path);
+  if (!r.ok()) return r.status();
   std::vector<io::H5DatasetInfo> infos;
-  for (const auto& c : columns) {
-    auto info = r->Dataset("/pairs/" + c);
+  for (const auto& c : kPairsPreviewColumns) {
+    auto info = (*r)->Dataset(std::string("/pairs/") + c);
     if (!info.ok()) return info.status();
     infos.push_back(*info);
   }
-  const uint64_t total = infos[0].shape.empty() ? 0 : infos[0].shape[0];
-  const int n = static_cast<int>(std::min<uint64_t>(total, static_cast<uint64_t>(std::max(1, max_samples))));
+  const uint64_t samples = infos[0].shape.empty() ? 0 : infos[0].shape[0];
+  const int n = static_cast<int>(std::min<uint64_t>(samples, static_cast<uint64_t>(std::max(1, max_samples))));
   if (n == 0) return io::Status::BadInput(fmt::format("{}: no samples to preview", h5_path));
   std::vector<cv::Mat> rows;
   for (int k = 0; k < n; ++k) {
-    const uint64_t i = n == 1 ? 0 : static_cast<uint64_t>(k) * (total - 1) / (n - 1);
+    const uint64_t i = n == 1 ? 0 : static_cast<uint64_t>(k) * (samples - 1) / static_cast<uint64_t>(n - 1);
     std::vector<cv::Mat> tiles;
     for (const auto& info : infos) {
-      auto t = Tile(*r, info, i, 128);
+      auto t = Tile(**r, info, i, 128);
       if (!t.ok()) return t.status();
       tiles.push_back(*t);
       tiles.push_back(cv::Mat(128, 4, CV_8UC3, cv::Scalar(40, 40, 40)));
@@ -88,7 +82,7 @@ io::Status WritePairsPreview(const std::string& h5_path, const std::string& png_
   }
   cv::Mat sheet;
   cv::vconcat(rows, sheet);
-  return io::WritePng(png_path, sheet, overwrite);
+  return sheet;
 }
 
 }  // namespace lumenrig::synth

@@ -354,6 +354,7 @@ struct Executor {
     ctx.unit_dir = ctx.camera ? (fs::path(ctx.session_out_dir) / ctx.camera->id).string() : ctx.session_out_dir;
     ctx.threads = options->threads;
     ctx.mem_budget_bytes = unit_budget;
+    ctx.unit_key = unit.key;
     if (events->unit_progress) ctx.progress = [this, &unit](double f) { events->unit_progress(unit, f); };
     if (events->unit_started) events->unit_started(unit);
 

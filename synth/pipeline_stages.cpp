@@ -3,10 +3,19 @@
 #include "pipeline_stages.h"
 
 #include <filesystem>
+#include <algorithm>
+#include <cstdio>
 #include <fstream>
+#include <map>
 
+#include "lumenrig/capture_io/atomic_file.h"
+#include "lumenrig/capture_io/content_hash.h"
 #include "lumenrig/capture_io/hdf5_writer.h"
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/solvers/matte_stage.h"
+#include "lumenrig/solvers/normals_stage.h"
+#include "lumenrig/solvers/session_check.h"
+#include "lumenrig/synth/pairs.h"
 
 namespace fs = std::filesystem;
 using nlohmann::json;
@@ -82,11 +91,225 @@ io::Status RunAssemble(const StageUnitContext& ctx, std::vector<std::string>* ou
   return io::Status::Ok();
 }
 
+std::map<std::string, std::string> Provenance(const StageUnitContext& ctx, const char* stage) {
+  return {{"lumenrig.tool", "lumenrig run"},
+          {"lumenrig.version", LUMENRIG_VERSION},
+          {"lumenrig.session", ctx.session->Id()},
+          {"lumenrig.camera", ctx.camera ? ctx.camera->id : ""},
+          {"lumenrig.stage", stage}};
+}
+
+/// The session file, its rig and (optionally) frames of one camera or all.
+std::vector<std::string> SessionFiles(const io::Session& s) { return {s.path, s.rig.path}; }
+
+void AddIf(std::vector<std::string>* files, const std::string& path) {
+  if (!path.empty()) files->push_back(path);
+}
+
+std::vector<std::string> OlatFiles(const io::Camera& c) {
+  std::vector<std::string> f;
+  for (const auto& o : c.olat) f.push_back(o.path);
+  AddIf(&f, c.dark);
+  AddIf(&f, c.mask);
+  return f;
+}
+
+// ---- check ------------------------------------------------------------------
+
+io::Status CheckOptionsFromRun(const RunOptions& o, solvers::CheckOptions* options) {
+  if (o.check_options.empty()) return io::Status::Ok();
+  return solvers::SetThresholds(o.check_options, "--check thresholds", options);
+}
+
+io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  solvers::CheckOptions options;
+  LUMENRIG_RETURN_IF_ERROR(CheckOptionsFromRun(*ctx.options, &options));
+  if (ctx.progress) options.progress = [&ctx](int done, int total) { ctx.progress(total > 0 ? double(done) / total : 0.0); };
+  solvers::CheckResult result;
+  LUMENRIG_RETURN_IF_ERROR(solvers::CheckSession(*ctx.session, options, &result, ctx.threads));
+  const std::string dir = Join(ctx.session_out_dir, "check");
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
+  const std::string json_path = Join(dir, "check.json");
+  LUMENRIG_RETURN_IF_ERROR(solvers::WriteCheckJson(result, json_path, /*overwrite=*/true));
+  std::string html;
+  LUMENRIG_RETURN_IF_ERROR(solvers::WriteCheckReport(result, dir, /*overwrite=*/true, &html));
+  outputs->push_back(json_path);
+  outputs->push_back(html);
+  (*extra)["verdict"] = solvers::VerdictName(result.verdict);
+  return io::Status::Ok();
+}
+
+// ---- normals ----------------------------------------------------------------
+
+io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options) {
+  const std::string method = o.normals_options.value("method", "robust");
+  auto m = solvers::ParsePsMethod(method);
+  if (!m.ok()) return m.status();
+  options->ps.method = *m;
+  return io::Status::Ok();
+}
+
+io::Status RunNormals(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  solvers::NormalsOptions options;
+  LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &options));
+  options.mem_budget_bytes = ctx.mem_budget_bytes;
+  solvers::NormalsResult result;
+  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, ctx.camera->id, options, &result, ctx.threads));
+  const std::string dir = Join(ctx.unit_dir, "normals");
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
+  LUMENRIG_RETURN_IF_ERROR(solvers::WriteNormalsOutputs(result, dir, Provenance(ctx, "normals"), /*overwrite=*/true));
+  for (const auto& name : solvers::NormalsOutputNames(result)) outputs->push_back(Join(dir, name));
+  (*extra)["bands"] = result.bands;
+  (*extra)["band_rows"] = result.band_rows;
+  return io::Status::Ok();
+}
+
+// ---- matte ------------------------------------------------------------------
+
+std::vector<std::string> MatteFiles(const io::Camera& c) {
+  std::vector<std::string> f;
+  for (const std::string* p : {&c.clean_plate, &c.backlit, &c.lit, &c.dark, &c.mask}) AddIf(&f, *p);
+  for (const auto& mp : c.matte_pairs) {
+    f.push_back(mp.plate);
+    f.push_back(mp.frame);
+  }
+  return f;
+}
+
+io::Status RunMatte(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  solvers::MatteOptions options;
+  LUMENRIG_RETURN_IF_ERROR(solvers::MatteOptionsFromJson(ctx.options->matte_options, "--matte options", &options));
+  solvers::MatteResult result;
+  LUMENRIG_RETURN_IF_ERROR(solvers::ComputeMatte(*ctx.session, ctx.camera->id, options, &result, ctx.threads));
+  const std::string dir = Join(ctx.unit_dir, "matte");
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
+  LUMENRIG_RETURN_IF_ERROR(solvers::WriteMatteOutputs(result, *ctx.session, dir, /*force=*/true));
+  for (const auto& f : solvers::MatteOutputFiles(result, dir)) outputs->push_back(f);
+  (*extra)["method"] = solvers::MatteMethodName(result.method);
+  return io::Status::Ok();
+}
+
+// ---- pairs ------------------------------------------------------------------
+
+/// Auxiliary targets from this run's own normals and matte outputs.
+synth::AuxSource PipelineAuxSource(const std::string& session_out_dir) {
+  return [session_out_dir](const io::Session&, const io::Camera& camera, AuxMaps* out) -> io::Status {
+    const std::string cam_dir = Join(session_out_dir, camera.id);
+    auto normals = io::ReadImage(Join(Join(cam_dir, "normals"), "normals.exr"));
+    if (!normals.ok()) return normals.status();
+    auto albedo = io::ReadImage(Join(Join(cam_dir, "normals"), "albedo.exr"));
+    if (!albedo.ok()) return albedo.status();
+    auto alpha = io::ReadImage(Join(Join(cam_dir, "matte"), "alpha.exr"));
+    if (!alpha.ok()) return alpha.status();
+    out->normals = std::move(normals).value();
+    out->albedo = std::move(albedo).value();
+    out->alpha = std::move(alpha).value();
+    out->source = "lumenrig run: " + cam_dir;
+    return io::Status::Ok();
+  };
+}
+
+io::Status PairsOptionsFromRun(const RunOptions& o, synth::PairsOptions* p) {
+  p->envs_dir = o.envs_dir;
+  p->count = o.pairs_options.value("count", int64_t{16});
+  p->seed = o.pairs_options.value("seed", uint64_t{1});
+  const std::string size = o.pairs_options.value("size", std::string("256x256"));
+  if (std::sscanf(size.c_str(), "%dx%d", &p->width, &p->height) != 2 || p->width <= 0 || p->height <= 0)
+    return io::Status::BadInput(fmt::format("--size: \"{}\" is not WxH", size));
+  return io::Status::Ok();
+}
+
+std::vector<std::string> EnvFiles(const std::string& dir) {
+  std::vector<std::string> files;
+  std::error_code ec;
+  for (const auto& e : fs::directory_iterator(dir, ec)) {
+    const auto f = io::FormatFromPath(e.path().string());
+    if (f == io::FileFormat::kExr || f == io::FileFormat::kHdr) files.push_back(e.path().string());
+  }
+  std::sort(files.begin(), files.end());
+  return files;
+}
+
+io::Status RunPairs(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  synth::PairsOptions p;
+  LUMENRIG_RETURN_IF_ERROR(PairsOptionsFromRun(*ctx.options, &p));
+  p.sessions = {ctx.session->path};
+  p.out = Join(ctx.final_dir, ctx.session->Id() + ".pairs.h5");
+  p.threads = ctx.threads;
+  p.mem_budget_bytes = ctx.mem_budget_bytes;
+  p.aux_source = PipelineAuxSource(ctx.session_out_dir);
+  // Resume an interrupted pairs file only when it was started for this very
+  // unit (same key, recorded beside it); otherwise start afresh.
+  const std::string partial = io::H5Writer::TempPathFor(p.out);
+  const std::string key_file = partial + ".key";
+  const std::string key = io::HashHex(ctx.unit_key);
+  std::ifstream key_in(key_file);
+  std::string started_key;
+  key_in >> started_key;
+  if (fs::exists(partial) && started_key == key) {
+    p.resume = true;
+  } else {
+    p.force = true;
+    LUMENRIG_RETURN_IF_ERROR(io::WriteTextFile(key_file, key, /*overwrite=*/true));
+  }
+  synth::PairsSummary summary;
+  LUMENRIG_RETURN_IF_ERROR(synth::WritePairs(p, &summary));
+  std::error_code ec;
+  fs::remove(key_file, ec);
+  outputs->push_back(p.out);
+  (*extra)["samples"] = summary.samples_total;
+  (*extra)["resumed_from"] = summary.resumed_from;
+  return io::Status::Ok();
+}
+
 }  // namespace
 
 const std::vector<StageAdapter>& StageAdapters() {
   static const std::vector<StageAdapter> adapters = [] {
     std::vector<StageAdapter> a;
+
+    StageAdapter check;
+    check.kind = StageKind::kCheck;
+    check.options_slice = [](const RunOptions& o) { return o.check_options; };
+    check.input_files = [](const RunOptions&, const io::Session& s, const io::Camera*) {
+      std::vector<std::string> f = SessionFiles(s);
+      for (const auto& c : s.cameras) {
+        for (const auto& x : OlatFiles(c)) f.push_back(x);
+        for (const auto& x : MatteFiles(c)) f.push_back(x);
+        for (const auto& t : c.tracking) f.push_back(t.path);
+      }
+      return f;
+    };
+    check.run = RunCheck;
+    check.blocks_downstream = [](const json& extra) { return extra.value("verdict", "") == "FAIL"; };
+    a.push_back(check);
+
+    StageAdapter normals;
+    normals.kind = StageKind::kNormals;
+    normals.per_camera = true;
+    normals.order_upstream = {StageKind::kCheck};
+    normals.options_slice = [](const RunOptions& o) { return o.normals_options; };
+    normals.input_files = [](const RunOptions&, const io::Session& s, const io::Camera* c) {
+      std::vector<std::string> f = SessionFiles(s);
+      for (const auto& x : OlatFiles(*c)) f.push_back(x);
+      return f;
+    };
+    normals.run = RunNormals;
+    a.push_back(normals);
+
+    StageAdapter matte;
+    matte.kind = StageKind::kMatte;
+    matte.per_camera = true;
+    matte.order_upstream = {StageKind::kCheck};
+    matte.options_slice = [](const RunOptions& o) { return o.matte_options; };
+    matte.input_files = [](const RunOptions&, const io::Session& s, const io::Camera* c) {
+      std::vector<std::string> f = SessionFiles(s);
+      for (const auto& x : MatteFiles(*c)) f.push_back(x);
+      return f;
+    };
+    matte.run = RunMatte;
+    a.push_back(matte);
+
     StageAdapter assemble;
     assemble.kind = StageKind::kAssemble;
     assemble.per_camera = false;
@@ -97,6 +320,20 @@ const std::vector<StageAdapter>& StageAdapters() {
     };
     assemble.run = RunAssemble;
     a.push_back(assemble);
+
+    StageAdapter pairs;
+    pairs.kind = StageKind::kPairs;
+    pairs.key_upstream = {StageKind::kAssemble};
+    pairs.options_slice = [](const RunOptions& o) { return o.pairs_options; };
+    pairs.input_files = [](const RunOptions& o, const io::Session& s, const io::Camera*) {
+      std::vector<std::string> f = SessionFiles(s);
+      for (const auto& c : s.cameras)
+        for (const auto& x : c.olat) f.push_back(x.path);
+      for (const auto& e : EnvFiles(o.envs_dir)) f.push_back(e);
+      return f;
+    };
+    pairs.run = RunPairs;
+    a.push_back(pairs);
     return a;
   }();
   return adapters;

@@ -19,6 +19,7 @@ struct StageUnitContext {
   std::string final_dir;               ///< <out>
   int threads = 0;
   int64_t mem_budget_bytes = 0;
+  uint64_t unit_key = 0;  ///< the unit's key (for resumable outputs)
   std::function<void(double)> progress;
 };
 

@@ -55,7 +55,8 @@ struct NormalsResult {
   std::vector<int> all_zero_lights;  ///< lights whose frame is zero everywhere (warning)
   int near_field_iterations = 0;
   double near_field_change_deg = 0.0;
-  double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;
+  double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;  ///< wall
+  double read_cpu_seconds = 0, solve_cpu_seconds = 0;  ///< process CPU time (all threads)
 };
 
 /// Solves `camera_id` ("" = the first camera) of `session`.
@@ -74,9 +75,12 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
 /// confidence.exr (Y), depth.exr (Y; header lumenrig.depth_unit) as float
 /// EXR, plus normals_preview.png (normals, albedo, depth side by side), into
 /// `out_dir` (created). `provenance` goes into every EXR header. Refuses
-/// existing files unless `overwrite`, checking all before writing any.
+/// existing files unless `overwrite`, checking all before writing any; files
+/// are compressed concurrently on `threads` (0 = all cores) and removed
+/// again if any of them fails.
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
-                               const std::map<std::string, std::string>& provenance, bool overwrite);
+                               const std::map<std::string, std::string>& provenance, bool overwrite,
+                               int threads = 0);
 
 /// Names of the files WriteNormalsOutputs writes, in order.
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result);

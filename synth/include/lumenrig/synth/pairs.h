@@ -99,14 +99,11 @@ nlohmann::json PairsConfigJson(const PairsOptions& options);
 /// rigs without directions/positions, missing auxiliary maps.
 io::Status WritePairs(const PairsOptions& options, PairsSummary* summary = nullptr);
 
-}  // namespace lumenrig::synth
+/// Columns of the contact sheet, left to right.
+inline constexpr const char* kPairsPreviewColumns[] = {"input", "target", "albedo", "normals", "alpha", "light_diffuse"};
 
-namespace lumenrig::synth {
-
-/// Contact sheet PNG of a pairs file: up to `max_samples` rows (evenly
-/// spaced samples), columns input | target | albedo | normals | alpha |
-/// light_diffuse, 128 px high tiles. Refuses an existing PNG unless overwrite.
-io::Status WritePairsPreview(const std::string& h5_path, const std::string& png_path, int max_samples = 4,
-                             bool overwrite = false);
+/// A contact sheet (8-bit BGR) of up to `max_samples` samples spread over a
+/// pairs file: one row per sample, one 128-px-high tile per column.
+io::Expected<cv::Mat> PairsContactSheet(const std::string& h5_path, int max_samples);
 
 }  // namespace lumenrig::synth

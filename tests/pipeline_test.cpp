@@ -1,0 +1,226 @@
+// `lumenrig run` end to end: two simulated sessions with two cameras each,
+// read back by h5py (the outside reader) and compared with the per-stage EXR
+// outputs; kill-and-resume with SIGKILL at several points; dry-run reasons;
+// the QA gate; thread-count determinism; MPI sharding.
+#include <filesystem>
+#include <fstream>
+#include <string>
+
+#include <gtest/gtest.h>
+
+#include "test_support.h"
+
+namespace fs = std::filesystem;
+using lumenrig::test::CommandResult;
+using lumenrig::test::RunCli;
+using lumenrig::test::RunShell;
+using lumenrig::test::TempDir;
+
+namespace {
+
+/// Two small sessions and a folder of maps, shared by the tests of this file.
+class PipelineTest : public ::testing::Test {
+ protected:
+  static void SetUpTestSuite() {
+    data_ = new TempDir();
+    for (int i = 0; i < 2; ++i) {
+      const std::string dir = Session(i);
+      auto r = RunCli(fmt("simulate --out %s --cameras 2 --lights 40 --size 96x72 --seed %d --subject kh-bust-0%d",
+                          dir.c_str(), 11 + i, 3 + i));
+      ASSERT_EQ(r.exit_code, 0) << r.err;
+    }
+    auto r = RunCli("envmaps --out " + Envs() + " --height 32");
+    ASSERT_EQ(r.exit_code, 0) << r.err;
+  }
+  static void TearDownTestSuite() {
+    delete data_;
+    data_ = nullptr;
+  }
+  static std::string fmt(const char* f, const char* a, int b, int c) {
+    char buf[512];
+    std::snprintf(buf, sizeof(buf), f, a, b, c);
+    return buf;
+  }
+  static std::string Session(int i) { return *data_ / ("session" + std::to_string(i)); }
+  static std::string Envs() { return *data_ / "envs"; }
+  static std::string Args(const std::string& out, const std::string& extra = "") {
+    return "run " + Session(0) + " " + Session(1) + " --out " + out + " --envs " + Envs() +
+           " --count 4 --size 48x48 --mem-budget 512M " + extra;
+  }
+  /// Content hashes of every dataset of every HDF5 file in `out` (h5py), one
+  /// line per dataset, so runs can be compared without timestamps.
+  static std::string DatasetHashes(const std::string& out) {
+    const std::string script = *data_ / "hashes.py";
+    std::ofstream(script) << R"PY(
+import sys, glob, hashlib, h5py, numpy as np
+for path in sorted(glob.glob(sys.argv[1] + '/*.h5')):
+    f = h5py.File(path, 'r')
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset):
+            data = obj[...]
+            if data.dtype.kind == 'O':
+                data = np.array([str(x) for x in data.reshape(-1)])
+            print(path.split('/')[-1], name, obj.shape, hashlib.sha256(np.ascontiguousarray(data).tobytes()).hexdigest())
+    f.visititems(visit)
+)PY";
+    auto r = RunShell(lumenrig::test::Python() + " " + script + " " + out);
+    EXPECT_EQ(r.exit_code, 0) << r.err;
+    return r.out;
+  }
+  static TempDir* data_;
+};
+TempDir* PipelineTest::data_ = nullptr;
+
+TEST_F(PipelineTest, RunsEndToEndAndH5pyOutputsMatchStageExrs) {
+  TempDir out;
+  auto r = RunCli(Args(out.path()) + " --stats");
+  ASSERT_EQ(r.exit_code, 0) << r.out << r.err;
+  for (const char* id : {"kh-bust-03", "kh-bust-04"}) {
+    EXPECT_TRUE(fs::exists(out / (std::string(id) + ".h5"))) << id;
+    EXPECT_TRUE(fs::exists(out / (std::string(id) + ".pairs.h5"))) << id;
+    EXPECT_NE(r.out.find(std::string(id) + ".h5"), std::string::npos) << "output paths are printed";
+  }
+  EXPECT_NE(r.out.find("stage"), std::string::npos) << "--stats table";
+  // h5py (outside reader) against OpenCV's EXR reader (outside reader) of the
+  // per-stage outputs: half precision of the stored values (2^-11 relative).
+  const std::string script = out / "compare.py";
+  std::ofstream(script) << R"PY(
+import os, sys, h5py, numpy as np
+os.environ['OPENCV_IO_ENABLE_OPENEXR'] = '1'
+import cv2
+out = sys.argv[1]
+checked = 0
+for sid in ('kh-bust-03', 'kh-bust-04'):
+    f = h5py.File(f'{out}/{sid}.h5', 'r')
+    assert f.attrs['format'] == 'lumenrig.groundtruth/1'
+    assert 'qa_json' in f.attrs
+    for cam in ('cam00', 'cam01'):
+        for ds, stage, name in (('normals', 'normals', 'normals.exr'), ('albedo', 'normals', 'albedo.exr'),
+                                ('depth', 'normals', 'depth.exr'), ('alpha', 'matte', 'alpha.exr')):
+            exr = cv2.imread(f'{out}/{sid}/{cam}/{stage}/{name}', cv2.IMREAD_UNCHANGED).astype(np.float32)
+            if exr.ndim == 3:
+                exr = exr[:, :, ::-1]
+            else:
+                exr = exr[:, :, None]
+            h = f[f'/cameras/{cam}/{ds}'][...].astype(np.float32)
+            assert h.shape == exr.shape, (sid, cam, ds, h.shape, exr.shape)
+            tol = 0 if ds == 'depth' else 1e-3 * np.abs(exr) + 1e-4
+            assert np.all(np.abs(h - exr) <= tol), (sid, cam, ds, float(np.abs(h - exr).max()))
+            checked += 1
+    p = h5py.File(f'{out}/{sid}.pairs.h5', 'r')
+    assert p['/pairs/input'].shape == (4, 48, 48, 3) and p['/pairs/input'].dtype == np.float16
+print(checked)
+)PY";
+  auto c = RunShell(lumenrig::test::Python() + " " + script + " " + out.path());
+  EXPECT_EQ(c.exit_code, 0) << c.out << c.err;
+  EXPECT_EQ(c.out, "16\n");
+}
+
+TEST_F(PipelineTest, KilledRunsResumeToTheSameContent) {
+  TempDir reference;
+  auto r = RunCli(Args(reference.path()));
+  ASSERT_EQ(r.exit_code, 0) << r.err;
+  const std::string expected = DatasetHashes(reference.path());
+  ASSERT_FALSE(expected.empty());
+  // Kill points: after some frames were solved (first camera's normals), in
+  // the middle of an HDF5 write (assemble), and after the matte of the
+  // second session.
+  for (const char* point : {"after:normals:kh-bust-03:cam00", "assemble:mid_write", "after:matte:kh-bust-04:cam01"}) {
+    TempDir out;
+    auto killed = RunShell(std::string("LUMENRIG_TEST_KILL_AT=") + point + " NO_COLOR=1 " + LUMENRIG_CLI_PATH + " " +
+                           Args(out.path()) + " </dev/null");
+    EXPECT_EQ(killed.exit_code, 128 + 9) << point << ": the process must die by SIGKILL\n" << killed.err;
+    // Nothing half-written where a finished file is expected.
+    for (const auto& e : fs::directory_iterator(out.path()))
+      if (e.path().extension() == ".h5") {
+        auto check = RunShell(lumenrig::test::Python() + " -c \"import h5py,sys; h5py.File(sys.argv[1],'r')\" " +
+                              e.path().string());
+        EXPECT_EQ(check.exit_code, 0) << point << ": unreadable " << e.path();
+      }
+    auto resumed = RunCli(Args(out.path()));
+    ASSERT_EQ(resumed.exit_code, 0) << point << "\n" << resumed.err;
+    EXPECT_EQ(DatasetHashes(out.path()), expected) << point;
+  }
+}
+
+TEST_F(PipelineTest, DryRunShowsWhatAnOptionChangeReruns) {
+  TempDir out;
+  ASSERT_EQ(RunCli(Args(out.path())).exit_code, 0);
+  auto same = RunCli(Args(out.path(), "--dry-run"));
+  ASSERT_EQ(same.exit_code, 0) << same.err;
+  EXPECT_EQ(same.out.find("will"), std::string::npos) << same.out;
+  auto changed = RunCli(Args(out.path(), "--dry-run --matte-method difference"));
+  ASSERT_EQ(changed.exit_code, 0) << changed.err;
+  std::istringstream lines(changed.out);
+  std::string line;
+  int matte = 0, downstream = 0, untouched = 0;
+  while (std::getline(lines, line)) {
+    const bool reruns = line.find("will rerun") != std::string::npos;
+    if (line.find(" matte ") != std::string::npos) {
+      EXPECT_TRUE(reruns) << line;
+      EXPECT_NE(line.find("options changed: method"), std::string::npos) << line;
+      ++matte;
+    } else if (line.find(" assemble ") != std::string::npos || line.find(" pairs ") != std::string::npos) {
+      EXPECT_TRUE(reruns) << line;
+      ++downstream;
+    } else {
+      EXPECT_NE(line.find("up to date"), std::string::npos) << line;
+      ++untouched;
+    }
+  }
+  EXPECT_EQ(matte, 4);        // 2 sessions x 2 cameras
+  EXPECT_EQ(downstream, 4);   // assemble + pairs per session
+  EXPECT_EQ(untouched, 6);    // check + 2 normals per session
+  // Modifying an output is noticed too.
+  std::ofstream(out / "kh-bust-03/cam00/normals/albedo.exr", std::ios::app) << "x";
+  auto modified = RunCli(Args(out.path(), "--dry-run"));
+  EXPECT_NE(modified.out.find("output missing or modified"), std::string::npos) << modified.out;
+}
+
+TEST_F(PipelineTest, OutputsAreIdenticalForOneAndTwoThreads) {
+  TempDir one, two;
+  ASSERT_EQ(RunCli(Args(one.path(), "--threads 1")).exit_code, 0);
+  ASSERT_EQ(RunCli(Args(two.path(), "--threads 2")).exit_code, 0);
+  EXPECT_EQ(DatasetHashes(one.path()), DatasetHashes(two.path()));
+  // The ground-truth files carry no timestamps: byte-identical.
+  auto cmp = RunShell("cmp " + (one / "kh-bust-03.h5") + " " + (two / "kh-bust-03.h5"));
+  EXPECT_EQ(cmp.exit_code, 0) << cmp.out;
+}
+
+TEST_F(PipelineTest, QaFailStopsLaterStagesUnlessForced) {
+  TempDir bad, out, forced;
+  auto sim = RunCli("simulate --out " + bad.path() + "/s --cameras 1 --lights 40 --size 96x72 --fault-dead-light cam00:3");
+  ASSERT_EQ(sim.exit_code, 0) << sim.err;
+  auto r = RunCli("run " + bad.path() + "/s --out " + out.path() + " --stages check,normals,matte,assemble");
+  EXPECT_EQ(r.exit_code, 1) << r.out << r.err;
+  EXPECT_NE(r.err.find("QA failed"), std::string::npos) << r.err;
+  EXPECT_FALSE(fs::exists(out / "kh-bust-03.h5"));
+  auto f = RunCli("run " + bad.path() + "/s --out " + forced.path() + " --stages check,normals,matte,assemble --force");
+  EXPECT_EQ(f.exit_code, 0) << f.err;
+  EXPECT_TRUE(fs::exists(forced / "kh-bust-03.h5"));
+}
+
+TEST_F(PipelineTest, BadInputIsOneLineExitTwo) {
+  TempDir out;
+  auto r = RunCli("run " + (*data_ / "nope") + " --out " + out.path());
+  EXPECT_EQ(r.exit_code, 2);
+  EXPECT_NE(r.err.find("nope"), std::string::npos) << r.err;
+  EXPECT_EQ(std::count(r.err.begin(), r.err.end(), '\n'), 1) << r.err;
+  auto s = RunCli(Args(out.path(), "--stages check,bogus"));
+  EXPECT_EQ(s.exit_code, 2);
+  EXPECT_NE(s.err.find("bogus"), std::string::npos) << s.err;
+  EXPECT_EQ(lumenrig::test::CountFiles(out.path()), 0);
+}
+
+TEST_F(PipelineTest, MpiRanksShareTheSessionsWithIdenticalResults) {
+  if (RunShell("command -v mpirun").exit_code != 0) GTEST_SKIP() << "mpirun not installed (Debian openmpi-bin)";
+  TempDir single, sharded;
+  ASSERT_EQ(RunCli(Args(single.path())).exit_code, 0);
+  auto r = RunShell(std::string("OMPI_MCA_plm=isolated OMPI_MCA_btl_vader_single_copy_mechanism=none "
+                                "OMPI_MCA_rmaps_base_oversubscribe=1 mpirun --allow-run-as-root -np 2 ") +
+                    LUMENRIG_CLI_PATH + " " + Args(sharded.path(), "--threads 1") + " </dev/null");
+  ASSERT_EQ(r.exit_code, 0) << r.out << r.err;
+  EXPECT_EQ(DatasetHashes(single.path()), DatasetHashes(sharded.path()));
+}
+
+}  // namespace
