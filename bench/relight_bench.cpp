@@ -9,9 +9,9 @@
 #include <map>
 #include <memory>
 
-#include <Eigen/Dense>
 #include <benchmark/benchmark.h>
 #include <fmt/format.h>
+#include <Eigen/Dense>
 
 #include "../tests/relight_fixture.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -138,7 +138,12 @@ void BM_RelightBatchDisk(benchmark::State& state) {
 }
 
 BENCHMARK(BM_PlainGemm)->Args({32, 1})->Args({32, 2})->Unit(benchmark::kMillisecond)->UseRealTime()->MinTime(2.0);
-BENCHMARK(BM_RelightBatchMemory)->Args({32, 1})->Args({32, 2})->Unit(benchmark::kMillisecond)->UseRealTime()->MinTime(2.0);
+BENCHMARK(BM_RelightBatchMemory)
+    ->Args({32, 1})
+    ->Args({32, 2})
+    ->Unit(benchmark::kMillisecond)
+    ->UseRealTime()
+    ->MinTime(2.0);
 BENCHMARK(BM_RelightBatchDisk)->Args({32, 2})->Args({1, 2})->Unit(benchmark::kMillisecond)->UseRealTime()->MinTime(2.0);
 
 // Collects real time per iteration and maps/s to print ratios at the end.
@@ -165,14 +170,16 @@ class RatioReporter : public benchmark::ConsoleReporter {
       const std::string pn = fmt::format("BM_PlainGemm/32/{}/min_time:2.000/real_time", t);
       const std::string on = fmt::format("BM_RelightBatchMemory/32/{}/min_time:2.000/real_time", t);
       if (plain > 0) {
-        fmt::print("batched K=32 (in memory) / plain Eigen GEMM, {} thread(s): {:.1f}% by wall time, {:.1f}% by CPU "
-                   "time (target >= 70%)\n",
-                   t, 100 * ours / plain, 100 * cpu_s_[pn] / cpu_s_[on]);
+        fmt::print(
+            "batched K=32 (in memory) / plain Eigen GEMM, {} thread(s): {:.1f}% by wall time, {:.1f}% by CPU "
+            "time (target >= 70%)\n",
+            t, 100 * ours / plain, 100 * cpu_s_[pn] / cpu_s_[on]);
       }
     }
     const double b32 = get("BM_RelightBatchDisk/32/2/min_time:2.000/real_time");
     const double b1 = get("BM_RelightBatchDisk/1/2/min_time:2.000/real_time");
-    if (b1 > 0) fmt::print("from disk, per map: batched K=32 / one map at a time: {:.1f}x faster (target >= 10x)\n", b32 / b1);
+    if (b1 > 0)
+      fmt::print("from disk, per map: batched K=32 / one map at a time: {:.1f}x faster (target >= 10x)\n", b32 / b1);
   }
 
  private:

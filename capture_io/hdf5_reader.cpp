@@ -95,7 +95,8 @@ Expected<H5DatasetInfo> H5Reader::Dataset(const std::string& name) const {
   for (int i = 0; i < nf; ++i) {
     unsigned flags = 0, filter_config = 0;
     size_t nelem = 0;
-    const H5Z_filter_t f = H5Pget_filter2(plist.id, static_cast<unsigned>(i), &flags, &nelem, nullptr, 0, nullptr, &filter_config);
+    const H5Z_filter_t f =
+        H5Pget_filter2(plist.id, static_cast<unsigned>(i), &flags, &nelem, nullptr, 0, nullptr, &filter_config);
     if (f == H5Z_FILTER_DEFLATE) info.gzip = true;
     if (f == H5Z_FILTER_SHUFFLE) info.shuffle = true;
   }
@@ -129,11 +130,13 @@ Expected<std::vector<std::string>> H5Reader::AttributeNames(const std::string& o
 Expected<std::string> H5Reader::StringAttribute(const std::string& object, const std::string& key) const {
   auto v = StringArrayAttribute(object, key);
   if (!v.ok()) return v.status();
-  if (v->size() != 1) return Status::BadInput(fmt::format("{}: {} attribute {}: not a single string", path_, object, key));
+  if (v->size() != 1)
+    return Status::BadInput(fmt::format("{}: {} attribute {}: not a single string", path_, object, key));
   return (*v)[0];
 }
 
-Expected<std::vector<std::string>> H5Reader::StringArrayAttribute(const std::string& object, const std::string& key) const {
+Expected<std::vector<std::string>> H5Reader::StringArrayAttribute(const std::string& object,
+                                                                  const std::string& key) const {
   Id a(H5Aopen_by_name(file_, object.c_str(), key.c_str(), H5P_DEFAULT, H5P_DEFAULT), H5Aclose);
   if (!a.ok()) return Status::BadInput(fmt::format("{}: {} has no attribute {}", path_, object, key));
   Id type(H5Aget_type(a.id), H5Tclose);
@@ -148,13 +151,15 @@ Expected<std::vector<std::string>> H5Reader::StringArrayAttribute(const std::str
     Id mem(H5Tcopy(H5T_C_S1), H5Tclose);
     H5Tset_size(mem.id, H5T_VARIABLE);
     H5Tset_cset(mem.id, H5Tget_cset(type.id));
-    if (H5Aread(a.id, mem.id, ptrs.data()) < 0) return Status::BadInput(fmt::format("{}: cannot read attribute {}", path_, key));
+    if (H5Aread(a.id, mem.id, ptrs.data()) < 0)
+      return Status::BadInput(fmt::format("{}: cannot read attribute {}", path_, key));
     for (char* p : ptrs) out.emplace_back(p ? p : "");
     H5Dvlen_reclaim(mem.id, space.id, H5P_DEFAULT, ptrs.data());
   } else {
     const size_t size = H5Tget_size(type.id);
     std::vector<char> buf(size * static_cast<size_t>(n) + 1, '\0');
-    if (H5Aread(a.id, type.id, buf.data()) < 0) return Status::BadInput(fmt::format("{}: cannot read attribute {}", path_, key));
+    if (H5Aread(a.id, type.id, buf.data()) < 0)
+      return Status::BadInput(fmt::format("{}: cannot read attribute {}", path_, key));
     for (hssize_t i = 0; i < n; ++i) {
       std::string s(buf.data() + i * size, size);
       s.erase(std::find(s.begin(), s.end(), '\0'), s.end());
@@ -219,11 +224,13 @@ Status H5Reader::ReadFloat(const std::string& name, uint64_t first, uint64_t cou
   return Status::Ok();
 }
 
-Status H5Reader::ReadStrings(const std::string& name, uint64_t first, uint64_t count, std::vector<std::string>* out) const {
+Status H5Reader::ReadStrings(const std::string& name, uint64_t first, uint64_t count,
+                             std::vector<std::string>* out) const {
   Id d(H5Dopen2(file_, name.c_str(), H5P_DEFAULT), H5Dclose);
   if (!d.ok()) return Status::BadInput(fmt::format("{}: no dataset {}", path_, name));
   Id type(H5Dget_type(d.id), H5Tclose);
-  if (H5Tget_class(type.id) != H5T_STRING) return Status::BadInput(fmt::format("{}: dataset {} is not strings", path_, name));
+  if (H5Tget_class(type.id) != H5T_STRING)
+    return Status::BadInput(fmt::format("{}: dataset {} is not strings", path_, name));
   hid_t fs = -1, ms = -1;
   uint64_t per = 0;
   LUMENRIG_RETURN_IF_ERROR(SelectSamples(path_, name, d.id, first, count, &fs, &ms, &per));

@@ -17,11 +17,13 @@ struct EnvmapsArgs {
 
 int Run(const EnvmapsArgs& a) {
   const auto t0 = std::chrono::steady_clock::now();
-  if (a.height < 4) return ReportError("envmaps", io::Status::BadInput(fmt::format("--height: {} is too small (min 4)", a.height)));
+  if (a.height < 4)
+    return ReportError("envmaps", io::Status::BadInput(fmt::format("--height: {} is too small (min 4)", a.height)));
   auto paths = synth::WriteProceduralEnvMaps(a.out, a.height, a.force);
   if (!paths.ok()) return ReportError("envmaps", paths.status());
   for (const auto& p : *paths) fmt::print("wrote {}\n", p);
-  fmt::print("envmaps: {}\n", TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
+  fmt::print("envmaps: {}\n",
+             TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
   return 0;
 }
 

@@ -71,38 +71,38 @@ int Run(const RelightArgs& a) {
   st = io::WriteExr(a.out, relit[0], w);
   if (!st.ok()) return ReportError(cmd, st);
 
-  fmt::print("relit {} camera {} ({}x{}, {} lights) under {} (rotation {} deg)\n", session->Id(), camera->id,
-             sum.width, sum.height, sum.lights, env->name, a.rotate_deg);
-  fmt::print("environment: {} texel(s) were NaN/Inf/negative and clamped to 0; {:.2f}% of its energy falls "
-             "where the rig has no lights (dropped)\n",
-             sum.clamped_texels, 100.0 * sum.uncovered_energy_fraction[0]);
+  fmt::print("relit {} camera {} ({}x{}, {} lights) under {} (rotation {} deg)\n", session->Id(), camera->id, sum.width,
+             sum.height, sum.lights, env->name, a.rotate_deg);
+  fmt::print(
+      "environment: {} texel(s) were NaN/Inf/negative and clamped to 0; {:.2f}% of its energy falls "
+      "where the rig has no lights (dropped)\n",
+      sum.clamped_texels, 100.0 * sum.uncovered_energy_fraction[0]);
   fmt::print("wrote {}\n", a.out);
-  fmt::print("relight: {}\n", TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
+  fmt::print("relight: {}\n",
+             TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
   return 0;
 }
 
-CommandRegistrar reg({"relight",
-                      "Relight one camera of a session under a lat-long HDR map (reflectance-field relighting)", 60,
-                      [](CLI::App* sub) -> std::function<int()> {
-                        auto a = std::make_shared<RelightArgs>();
-                        sub->add_option("session", a->session, "Session folder or session.json")->required();
-                        sub->add_option("--env", a->env, "Lat-long HDR map (.exr or .hdr, width = 2 x height)")
-                            ->required();
-                        sub->add_option("--out", a->out, "Output OpenEXR (half float RGB, the map's radiance units)")
-                            ->required();
-                        sub->add_option("--rotate", a->rotate_deg, "Rotate the map about +y (degrees)");
-                        sub->add_option("--camera", a->camera, "Camera id (default: the first camera)");
-                        sub->add_option("--exposure", a->exposure_ev, "Multiply the map by 2^EV after normalisation");
-                        sub->add_option("--target-luminance", a->target_luminance,
-                                        "Normalise the map to this mean BT.709 luminance first (0 = off)");
-                        sub->add_option("--coverage-deg", a->coverage_deg,
-                                        "Map texels farther than this from every light are dropped and reported "
-                                        "(0 = the rig's largest light spacing)");
-                        sub->add_option("--mem-budget", a->mem_budget, "Memory for the band of frames (e.g. 512M, 2G)");
-                        sub->add_option("--threads", a->threads, "Worker threads (0 = all cores)");
-                        sub->add_flag("--force", a->force, "Overwrite an existing output");
-                        return [a] { return Run(*a); };
-                      }});
+CommandRegistrar reg(
+    {"relight", "Relight one camera of a session under a lat-long HDR map (reflectance-field relighting)", 60,
+     [](CLI::App* sub) -> std::function<int()> {
+       auto a = std::make_shared<RelightArgs>();
+       sub->add_option("session", a->session, "Session folder or session.json")->required();
+       sub->add_option("--env", a->env, "Lat-long HDR map (.exr or .hdr, width = 2 x height)")->required();
+       sub->add_option("--out", a->out, "Output OpenEXR (half float RGB, the map's radiance units)")->required();
+       sub->add_option("--rotate", a->rotate_deg, "Rotate the map about +y (degrees)");
+       sub->add_option("--camera", a->camera, "Camera id (default: the first camera)");
+       sub->add_option("--exposure", a->exposure_ev, "Multiply the map by 2^EV after normalisation");
+       sub->add_option("--target-luminance", a->target_luminance,
+                       "Normalise the map to this mean BT.709 luminance first (0 = off)");
+       sub->add_option("--coverage-deg", a->coverage_deg,
+                       "Map texels farther than this from every light are dropped and reported "
+                       "(0 = the rig's largest light spacing)");
+       sub->add_option("--mem-budget", a->mem_budget, "Memory for the band of frames (e.g. 512M, 2G)");
+       sub->add_option("--threads", a->threads, "Worker threads (0 = all cores)");
+       sub->add_flag("--force", a->force, "Overwrite an existing output");
+       return [a] { return Run(*a); };
+     }});
 
 }  // namespace
 }  // namespace lumenrig::cli

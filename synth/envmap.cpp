@@ -3,8 +3,8 @@
 #include <algorithm>
 #include <cmath>
 
-#include <Eigen/Geometry>
 #include <fmt/format.h>
+#include <Eigen/Geometry>
 
 #include "lumenrig/capture_io/color.h"
 
@@ -41,9 +41,8 @@ io::Status ValidateLatLong(const cv::Mat& image, const std::string& source) {
         fmt::format("{}: environment map must have 3 channels (RGB), found {}", source, image.channels()));
   }
   if (image.cols != 2 * image.rows) {
-    return io::Status::BadInput(fmt::format(
-        "{}: not a lat-long map: size {}x{} but width must be exactly 2 x height", source, image.cols,
-        image.rows));
+    return io::Status::BadInput(fmt::format("{}: not a lat-long map: size {}x{} but width must be exactly 2 x height",
+                                            source, image.cols, image.rows));
   }
   return io::Status::Ok();
 }
@@ -115,9 +114,9 @@ io::Status NormaliseExposure(EnvMap* env, double target_luminance) {
   }
   const double mean = MeanLuminance(env->radiance);
   if (!(mean > 0.0)) {
-    return io::Status::BadInput(fmt::format(
-        "{}: environment map is black (mean BT.709 luminance 0), cannot normalise exposure",
-        env->path.empty() ? env->name : env->path));
+    return io::Status::BadInput(
+        fmt::format("{}: environment map is black (mean BT.709 luminance 0), cannot normalise exposure",
+                    env->path.empty() ? env->name : env->path));
   }
   const double scale = target_luminance / mean;
   env->radiance *= scale;

@@ -36,10 +36,10 @@ io::Intrinsics ScaleIntrinsics(const io::Intrinsics& in, double sx, double sy) {
 
 io::Status RenderLightMaps(const cv::Mat& normals_camera, const io::Intrinsics& intrinsics,
                            const Eigen::Matrix3d& camera_from_rig, const ShCoeffs& sh,
-                           const PhongPrefiltered& specular_maps, cv::Mat* diffuse,
-                           std::vector<cv::Mat>* specular) {
+                           const PhongPrefiltered& specular_maps, cv::Mat* diffuse, std::vector<cv::Mat>* specular) {
   if (normals_camera.type() != CV_32FC3) return io::Status::BadInput("light maps: normals must be CV_32FC3");
-  if (!(intrinsics.fx > 0 && intrinsics.fy > 0)) return io::Status::BadInput("light maps: intrinsics fx/fy must be > 0");
+  if (!(intrinsics.fx > 0 && intrinsics.fy > 0))
+    return io::Status::BadInput("light maps: intrinsics fx/fy must be > 0");
   const int w = normals_camera.cols, h = normals_camera.rows;
   const Eigen::Matrix3d rig_from_camera = camera_from_rig.transpose();
   *diffuse = cv::Mat::zeros(h, w, CV_32FC3);
@@ -53,9 +53,9 @@ io::Status RenderLightMaps(const cv::Mat& normals_camera, const io::Intrinsics& 
       if (!(len >= 0.5) || !std::isfinite(len)) continue;
       n /= len;
       const Eigen::Vector3d e = ShIrradiance(sh, rig_from_camera * n) / M_PI;
-      diffuse->at<cv::Vec3f>(y, x) = cv::Vec3f(static_cast<float>(std::max(0.0, e.x())),
-                                               static_cast<float>(std::max(0.0, e.y())),
-                                               static_cast<float>(std::max(0.0, e.z())));
+      diffuse->at<cv::Vec3f>(y, x) =
+          cv::Vec3f(static_cast<float>(std::max(0.0, e.x())), static_cast<float>(std::max(0.0, e.y())),
+                    static_cast<float>(std::max(0.0, e.z())));
       const Eigen::Vector3d v = CameraRay(intrinsics, x, y);
       const Eigen::Vector3d r = rig_from_camera * (v - 2.0 * v.dot(n) * n);
       for (size_t s = 0; s < specular_maps.maps.size(); ++s) {
@@ -69,10 +69,9 @@ io::Status RenderLightMaps(const cv::Mat& normals_camera, const io::Intrinsics& 
 
 cv::Mat RenderBackground(const cv::Mat& latlong, const io::Intrinsics& intrinsics, int width, int height,
                          const Eigen::Matrix3d& camera_from_rig, double yaw_deg, double pitch_deg) {
-  const Eigen::Matrix3d view =
-      (Eigen::AngleAxisd(yaw_deg * M_PI / 180.0, Eigen::Vector3d::UnitY()) *
-       Eigen::AngleAxisd(pitch_deg * M_PI / 180.0, Eigen::Vector3d::UnitX()))
-          .toRotationMatrix();
+  const Eigen::Matrix3d view = (Eigen::AngleAxisd(yaw_deg * M_PI / 180.0, Eigen::Vector3d::UnitY()) *
+                                Eigen::AngleAxisd(pitch_deg * M_PI / 180.0, Eigen::Vector3d::UnitX()))
+                                   .toRotationMatrix();
   const Eigen::Matrix3d rig_from_view = camera_from_rig.transpose() * view;
   cv::Mat out(height, width, CV_32FC3);
   for (int y = 0; y < height; ++y) {

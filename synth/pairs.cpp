@@ -8,8 +8,8 @@
 #include <map>
 #include <memory>
 
-#include <Eigen/Geometry>
 #include <fmt/format.h>
+#include <Eigen/Geometry>
 #include <opencv2/imgproc.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
@@ -46,7 +46,8 @@ io::Status TruthAuxSource(const io::Session& session, const io::Camera& camera, 
     std::error_code ec;
     if (!fs::exists(p, ec)) {
       return io::Status::BadInput(fmt::format(
-          "{}: missing (pairs need albedo, normals and alpha; the default source is the simulator's truth/<camera>/)", p));
+          "{}: missing (pairs need albedo, normals and alpha; the default source is the simulator's truth/<camera>/)",
+          p));
     }
     return io::ReadImage(p);
   };
@@ -66,11 +67,13 @@ io::Status TruthAuxSource(const io::Session& session, const io::Camera& camera, 
     alpha = *m;
     cv::threshold(alpha, alpha, 0.0, 1.0, cv::THRESH_BINARY);
   } else {
-    return io::Status::BadInput(fmt::format("{}: missing, and camera {} has no mask", (dir / "alpha.exr").string(), camera.id));
+    return io::Status::BadInput(
+        fmt::format("{}: missing, and camera {} has no mask", (dir / "alpha.exr").string(), camera.id));
   }
   if (alpha.channels() == 3) cv::cvtColor(alpha, alpha, cv::COLOR_RGB2GRAY);
   if (albedo->channels() == 1) cv::cvtColor(*albedo, *albedo, cv::COLOR_GRAY2RGB);
-  if (normals->channels() != 3) return io::Status::BadInput(fmt::format("{}: normals need 3 channels", (dir / "normals.exr").string()));
+  if (normals->channels() != 3)
+    return io::Status::BadInput(fmt::format("{}: normals need 3 channels", (dir / "normals.exr").string()));
   if (albedo->size() != normals->size() || alpha.size() != normals->size()) {
     return io::Status::BadInput(fmt::format("{}: albedo, normals and alpha sizes differ", dir.string()));
   }
@@ -87,13 +90,17 @@ namespace {
 // std::uniform_real_distribution whose algorithm is implementation-defined).
 double Uniform01(uint64_t bits) { return static_cast<double>(bits >> 11) * (1.0 / 9007199254740992.0); }
 
+// gzip level of the image fields: 1 is several times faster than the usual
+// 4-6 for a few percent larger files (the training loop reads, we write once).
+constexpr int kGzipLevel = 1;
+
 enum SeedTag : uint64_t { kTagEnv = 1, kTagCamera = 2, kTagView = 3 };
 
 struct PreparedEnv {
   std::string name;
-  cv::Mat full;       // normalised radiance
-  cv::Mat small;      // at the weight integration height
-  ShCoeffs sh;        // of the unrotated map
+  cv::Mat full;   // normalised radiance
+  cv::Mat small;  // at the weight integration height
+  ShCoeffs sh;    // of the unrotated map
   PhongPrefiltered spec;
   int64_t clamped = 0;
 };
@@ -126,11 +133,12 @@ SampleDraw DrawSample(const PairsOptions& o, int n_envs, int64_t i) {
 struct CameraContext {
   int session = 0;
   const io::Camera* camera = nullptr;
-  cv::Size native;           // capture size
-  cv::Rect crop;             // in capture pixels
-  io::Intrinsics intrinsics; // at the output size
+  cv::Size native;                       // capture size
+  cv::Rect crop;                         // in capture pixels
+  io::Intrinsics intrinsics;             // at the output size
+  io::Intrinsics background_intrinsics;  // at the output size
   Eigen::Matrix3d camera_from_rig = Eigen::Matrix3d::Identity();
-  AuxMaps aux;               // at the output size
+  AuxMaps aux;  // at the output size
   bool loaded = false;
 };
 
@@ -170,15 +178,20 @@ struct SampleOut {
 io::Status ValidateOptions(const PairsOptions& o) {
   if (o.sessions.empty()) return io::Status::BadInput("pairs: give at least one session");
   if (o.count <= 0) return io::Status::BadInput(fmt::format("--count: must be > 0, got {}", o.count));
-  if (o.width < 8 || o.height < 8) return io::Status::BadInput(fmt::format("--size: {}x{} is too small (min 8x8)", o.width, o.height));
+  if (o.width < 8 || o.height < 8)
+    return io::Status::BadInput(fmt::format("--size: {}x{} is too small (min 8x8)", o.width, o.height));
   if (o.batch_size < 1) return io::Status::BadInput("--batch: must be >= 1");
   if (o.specular_exponents.empty()) return io::Status::BadInput("--specular-exponents: list is empty");
   for (double s : o.specular_exponents) {
     if (!(s > 0)) return io::Status::BadInput(fmt::format("--specular-exponents: {} is not > 0", s));
   }
   if (!(o.target_luminance > 0)) return io::Status::BadInput("--target-luminance: must be > 0");
-  if (fs::path(o.out).extension() != ".h5") return io::Status::BadInput(fmt::format("{}: --out must end in .h5", o.out));
+  if (fs::path(o.out).extension() != ".h5")
+    return io::Status::BadInput(fmt::format("{}: --out must end in .h5", o.out));
   if (o.resume && o.force) return io::Status::BadInput("--resume and --force exclude each other");
+  if (o.background_fov_deg < 0 || o.background_fov_deg >= 179) {
+    return io::Status::BadInput(fmt::format("--fov-deg: {} is outside [0, 179)", o.background_fov_deg));
+  }
   return io::Status::Ok();
 }
 
@@ -203,6 +216,7 @@ nlohmann::json PairsConfigJson(const PairsOptions& o) {
   j["target_luminance"] = o.target_luminance;
   j["background_yaw_deg"] = o.background_yaw_deg;
   j["background_pitch_deg"] = o.background_pitch_deg;
+  j["background_fov_deg"] = o.background_fov_deg;
   j["camera_sim"] = {{"exposure_sigma_ev", o.camera_sim.exposure_sigma_ev},
                      {"white_balance_sigma", o.camera_sim.white_balance_sigma},
                      {"read_noise", o.camera_sim.read_noise},
@@ -225,7 +239,8 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
   const bool final_exists = fs::exists(o.out, ec);
   const bool partial_exists = fs::exists(partial, ec);
   if (final_exists && !o.resume && !o.force) {
-    return io::Status::BadInput(fmt::format("{}: output exists; pass --resume to continue it or --force to replace it", o.out));
+    return io::Status::BadInput(
+        fmt::format("{}: output exists; pass --resume to continue it or --force to replace it", o.out));
   }
   const std::string config = PairsConfigJson(o).dump();
   if (o.resume && final_exists && !partial_exists) {
@@ -234,7 +249,8 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
     if (!r.ok()) return r.status();
     auto stored = (*r)->StringAttribute("/", "config");
     if (!stored.ok() || *stored != config) {
-      return io::Status::BadInput(fmt::format("{}: --resume: the file was written with different options (root attribute config); use --force", o.out));
+      return io::Status::BadInput(fmt::format(
+          "{}: --resume: the file was written with different options (root attribute config); use --force", o.out));
     }
     sum.samples_total = o.count;
     sum.resumed_from = o.count;
@@ -250,7 +266,8 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
     if (!loaded.ok()) return loaded.status();
     auto dirs = RigLightDirections(loaded->rig, loaded->rig.path.empty() ? loaded->path : loaded->rig.path);
     if (!dirs.ok()) return dirs.status();
-    if (loaded->cameras.empty()) return io::Status::BadInput(fmt::format("{}: cameras: session has no cameras", loaded->path));
+    if (loaded->cameras.empty())
+      return io::Status::BadInput(fmt::format("{}: cameras: session has no cameras", loaded->path));
     sessions.push_back(std::move(*loaded));
   }
   for (size_t si = 0; si < sessions.size(); ++si) {
@@ -301,7 +318,8 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
     writer = std::move(*w);
     auto stored = writer->GetStringAttribute("/", "config");
     if (!stored.ok() || *stored != config) {
-      return io::Status::BadInput(fmt::format("{}: --resume: the interrupted run used different options (root attribute config); use --force", partial));
+      return io::Status::BadInput(fmt::format(
+          "{}: --resume: the interrupted run used different options (root attribute config); use --force", partial));
     }
   } else {
     if (partial_exists) fs::remove(partial, ec);  // a stale partial of a run we replace
@@ -311,15 +329,18 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
   }
   const std::vector<uint64_t> img3 = {static_cast<uint64_t>(H), static_cast<uint64_t>(W), 3};
   const std::vector<io::H5DatasetSpec> specs = {
-      {"/pairs/input", img3, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/target", img3, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/alpha", {static_cast<uint64_t>(H), static_cast<uint64_t>(W), 1}, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/albedo", img3, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/normals", img3, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/background", img3, io::H5Type::kFloat16, 4, 0},
-      {"/pairs/light_diffuse", img3, io::H5Type::kFloat16, 4, 0},
+      {"/pairs/input", img3, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/target", img3, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/alpha", {static_cast<uint64_t>(H), static_cast<uint64_t>(W), 1}, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/albedo", img3, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/normals", img3, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/background", img3, io::H5Type::kFloat16, kGzipLevel, 0},
+      {"/pairs/light_diffuse", img3, io::H5Type::kFloat16, kGzipLevel, 0},
       {"/pairs/light_specular",
-       {static_cast<uint64_t>(H), static_cast<uint64_t>(W), static_cast<uint64_t>(S), 3}, io::H5Type::kFloat16, 4, 0},
+       {static_cast<uint64_t>(H), static_cast<uint64_t>(W), static_cast<uint64_t>(S), 3},
+       io::H5Type::kFloat16,
+       kGzipLevel,
+       0},
       {"/pairs/subject", {}, io::H5Type::kString, 4, 0},
       {"/pairs/camera", {}, io::H5Type::kString, 4, 0},
       {"/pairs/env_name", {}, io::H5Type::kString, 4, 0},
@@ -350,23 +371,37 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
     LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute(
         "/", "split_rule", "FNV-1a 64 of the subject id mod 100: <80 train, <90 validation, else test"));
     const std::map<std::string, std::pair<std::string, std::string>> meaning = {
-        {"input", {"srgb", "subject relit under the input map, composited over its background, camera-simulated (exposure, white balance, noise, optional JPEG), sRGB-encoded (IEC 61966-2-1)"}},
-        {"target", {"linear", "subject relit under the target map (map radiance units), premultiplied by alpha over black"}},
+        {"input",
+         {"srgb",
+          "subject relit under the input map, composited over its background, camera-simulated (exposure, white "
+          "balance, noise, optional JPEG), sRGB-encoded (IEC 61966-2-1)"}},
+        {"target",
+         {"linear", "subject relit under the target map (map radiance units), premultiplied by alpha over black"}},
         {"alpha", {"linear", "alpha matte 0..1"}},
         {"albedo", {"linear", "diffuse albedo"}},
-        {"normals", {"linear", "unit normals, camera frame (+x right, +y up, +z toward the viewer); 0 outside the subject"}},
+        {"normals",
+         {"linear", "unit normals, camera frame (+x right, +y up, +z toward the viewer); 0 outside the subject"}},
         {"background", {"linear", "perspective view of the input map behind the subject (map radiance units)"}},
-        {"light_diffuse", {"linear", "E(n)/pi of the target map from 9 SH coefficients (Ramamoorthi-Hanrahan 2001): albedo * light_diffuse is Lambertian shading"}},
-        {"light_specular", {"linear", "target map prefiltered with normalised Phong lobes, looked up at the reflected view ray; axis 3 follows attribute exponents"}},
+        {"light_diffuse",
+         {"linear",
+          "E(n)/pi of the target map from 9 SH coefficients (Ramamoorthi-Hanrahan 2001): albedo * light_diffuse is "
+          "Lambertian shading"}},
+        {"light_specular",
+         {"linear",
+          "target map prefiltered with normalised Phong lobes, looked up at the reflected view ray; axis 3 follows "
+          "attribute exponents"}},
     };
     for (const auto& [field, m] : meaning) {
       LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/" + field, "encoding", m.first));
       LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/" + field, "description", m.second));
     }
     LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/light_specular", "exponents", o.specular_exponents));
-    LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/rotation_deg", "description", "rotation of the target map about +y (degrees)"));
+    LUMENRIG_RETURN_IF_ERROR(
+        writer->SetAttribute("/pairs/rotation_deg", "description", "rotation of the target map about +y (degrees)"));
     LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/env_name", "description", "target map"));
-    LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/pairs/exposure", "description", "linear exposure multiplier of the simulated input camera (after map normalisation)"));
+    LUMENRIG_RETURN_IF_ERROR(
+        writer->SetAttribute("/pairs/exposure", "description",
+                             "linear exposure multiplier of the simulated input camera (after map normalisation)"));
   }
 
   // Memory: the batch's relit images at capture size and its outputs are
@@ -383,10 +418,13 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
       cc.native = aux.albedo.size();
       cc.crop = CentreCrop(aux.albedo.cols, aux.albedo.rows, W, H);
       const double sx = static_cast<double>(W) / cc.crop.width, sy = static_cast<double>(H) / cc.crop.height;
-      io::Intrinsics k = cc.camera->intrinsics ? *cc.camera->intrinsics : IntrinsicsFromFov(aux.albedo.cols, aux.albedo.rows, 40.0);
+      io::Intrinsics k =
+          cc.camera->intrinsics ? *cc.camera->intrinsics : IntrinsicsFromFov(aux.albedo.cols, aux.albedo.rows, 40.0);
       k.cx -= cc.crop.x;
       k.cy -= cc.crop.y;
       cc.intrinsics = ScaleIntrinsics(k, sx, sy);
+      cc.background_intrinsics =
+          o.background_fov_deg > 0 ? IntrinsicsFromFov(W, H, o.background_fov_deg) : cc.intrinsics;
       cc.camera_from_rig = cc.camera->RotationCameraFromRig();
       cc.aux.albedo = CropResize(aux.albedo, cc.crop, W, H);
       cc.aux.alpha = CropResize(aux.alpha, cc.crop, W, H);
@@ -405,21 +443,26 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
     auto stack = OpenOlatSource(session, *cc.camera);
     if (!stack.ok()) return stack.status();
     if ((*stack)->width() != cc.native.width || (*stack)->height() != cc.native.height) {
-      return io::Status::BadInput(fmt::format("{}: camera {}: OLAT frames and auxiliary maps differ in size", session.path, cc.camera->id));
+      return io::Status::BadInput(
+          fmt::format("{}: camera {}: OLAT frames and auxiliary maps differ in size", session.path, cc.camera->id));
     }
     // Draws and weights for all 2B columns (zero columns past count keep the
     // GEMM shape, hence the bits, independent of count).
     std::vector<SampleDraw> draws(B);
-    std::vector<Eigen::MatrixXd> weights(2 * B, Eigen::MatrixXd::Zero(static_cast<Eigen::Index>(session.rig.lights.size()), 3));
+    std::vector<Eigen::MatrixXd> weights(
+        2 * B, Eigen::MatrixXd::Zero(static_cast<Eigen::Index>(session.rig.lights.size()), 3));
     for (int j = 0; j < B; ++j) {
       const int64_t i = b * B + j;
       if (i >= o.count) continue;
       draws[j] = DrawSample(o, n_envs, i);
-      const LightWeights wi = ComputeLightWeights(RotateLatLong(envs[draws[j].env_in].small, draws[j].rot_in), session.rig, cells[cc.session]);
-      const LightWeights wt = ComputeLightWeights(RotateLatLong(envs[draws[j].env_tgt].small, draws[j].rot_tgt), session.rig, cells[cc.session]);
+      const LightWeights wi = ComputeLightWeights(RotateLatLong(envs[draws[j].env_in].small, draws[j].rot_in),
+                                                  session.rig, cells[cc.session]);
+      const LightWeights wt = ComputeLightWeights(RotateLatLong(envs[draws[j].env_tgt].small, draws[j].rot_tgt),
+                                                  session.rig, cells[cc.session]);
       weights[2 * j] = wi.weights;
       weights[2 * j + 1] = wt.weights;
-      sum.max_uncovered_energy_fraction = std::max({sum.max_uncovered_energy_fraction, wi.uncovered_energy_fraction, wt.uncovered_energy_fraction});
+      sum.max_uncovered_energy_fraction =
+          std::max({sum.max_uncovered_energy_fraction, wi.uncovered_energy_fraction, wt.uncovered_energy_fraction});
     }
     const int64_t relit_bytes = int64_t{2} * B * (*stack)->width() * (*stack)->height() * 12;
     const int64_t fixed = relit_bytes + per_sample_out * B;
@@ -454,12 +497,13 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
         // rotated(d) = map(R^T d): fold the map rotation into camera_from_rig.
         const Eigen::Matrix3d cam_in = cc.camera_from_rig * RotationAboutY(d.rot_in);
         const Eigen::Matrix3d cam_tgt = cc.camera_from_rig * RotationAboutY(d.rot_tgt);
-        so.background = RenderBackground(envs[d.env_in].full, cc.intrinsics, W, H, cam_in, d.yaw, d.pitch);
+        so.background = RenderBackground(envs[d.env_in].full, cc.background_intrinsics, W, H, cam_in, d.yaw, d.pitch);
         so.input = SimulateCameraResponse(CompositeOver(r_in, so.alpha, so.background), d.cam);
         so.target = cv::Mat::zeros(H, W, CV_32FC3);
         r_tgt.copyTo(so.target, so.alpha > 0.0f);
         std::vector<cv::Mat> spec;
-        (void)RenderLightMaps(so.normals, cc.intrinsics, cam_tgt, envs[d.env_tgt].sh, envs[d.env_tgt].spec, &so.diffuse, &spec);
+        (void)RenderLightMaps(so.normals, cc.intrinsics, cam_tgt, envs[d.env_tgt].sh, envs[d.env_tgt].spec, &so.diffuse,
+                              &spec);
         so.specular.resize(static_cast<size_t>(W) * H * S * 3);
         for (int y = 0; y < H; ++y) {
           for (int x = 0; x < W; ++x) {
@@ -514,12 +558,16 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
   std::vector<std::string> splits;
   LUMENRIG_RETURN_IF_ERROR(writer->ReadStrings("/pairs/split", 0, static_cast<uint64_t>(o.count), &splits));
   for (const auto& s : splits) {
-    if (s == "train") ++sum.train;
-    else if (s == "validation") ++sum.validation;
-    else ++sum.test;
+    if (s == "train")
+      ++sum.train;
+    else if (s == "validation")
+      ++sum.validation;
+    else
+      ++sum.test;
   }
-  LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute("/", "split_counts",
-                                                nlohmann::json{{"train", sum.train}, {"validation", sum.validation}, {"test", sum.test}}.dump()));
+  LUMENRIG_RETURN_IF_ERROR(writer->SetAttribute(
+      "/", "split_counts",
+      nlohmann::json{{"train", sum.train}, {"validation", sum.validation}, {"test", sum.test}}.dump()));
   LUMENRIG_RETURN_IF_ERROR(writer->Finalize());
   sum.samples_total = o.count;
   sum.seconds = std::chrono::duration<double>(Clock::now() - t_start).count();

@@ -4,8 +4,8 @@
 #include <chrono>
 #include <cmath>
 
-#include <Eigen/Dense>
 #include <fmt/format.h>
+#include <Eigen/Dense>
 
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -181,7 +181,8 @@ io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& w
     for (int i = 0; i < n; ++i) {
       const int li = stack->light_index()[i];
       if (li < 0 || li >= wk.rows() || wk.cols() != 3) {
-        return io::Status::Internal(fmt::format("relight: weights have {} rows, frame {} uses light {}", wk.rows(), i, li));
+        return io::Status::Internal(
+            fmt::format("relight: weights have {} rows, frame {} uses light {}", wk.rows(), i, li));
       }
     }
   }
@@ -198,9 +199,10 @@ io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& w
   // decoding buffers) and per-thread scratch (N + K floats per pixel of a chunk).
   const int64_t row_bytes = int64_t{2} * n * w * 3 * 4;
   const int64_t scratch = int64_t{threads} * kRowsPerChunk * w * (n + k) * 4 * 2;
-  int64_t rows = (options.mem_budget_bytes - scratch) / std::max<int64_t>(1, row_bytes);
+  int64_t rows = (options.mem_budget_bytes - scratch - stack->overhead_bytes()) / std::max<int64_t>(1, row_bytes);
   rows = std::max<int64_t>(kRowsPerChunk, rows / kRowsPerChunk * kRowsPerChunk);
-  const int band_rows = static_cast<int>(std::min<int64_t>(rows, (h + kRowsPerChunk - 1) / kRowsPerChunk * kRowsPerChunk));
+  const int band_rows =
+      static_cast<int>(std::min<int64_t>(rows, (h + kRowsPerChunk - 1) / kRowsPerChunk * kRowsPerChunk));
   relit->assign(k, cv::Mat());
   for (auto& m : *relit) m.create(h, w, CV_32FC3);
   if (stats) *stats = RelightStats{0, band_rows, 0, 0};
@@ -212,8 +214,12 @@ io::Status RelightBatch(OlatSource* stack, const std::vector<Eigen::MatrixXd>& w
     const auto t1 = Clock::now();
     io::ParallelFor(y0, y1, kRowsPerChunk, options.threads, [&](int64_t r0, int64_t r1) {
       const int m = static_cast<int>(r1 - r0) * w;
-      Eigen::MatrixXf a(m, n);
-      Eigen::MatrixXf result(m, k);
+      // Per-thread scratch reused across chunks and bands (no fresh pages).
+      thread_local std::vector<float> a_buf, r_buf;
+      if (a_buf.size() < static_cast<size_t>(m) * n) a_buf.resize(static_cast<size_t>(m) * n);
+      if (r_buf.size() < static_cast<size_t>(m) * k) r_buf.resize(static_cast<size_t>(m) * k);
+      Eigen::Map<Eigen::MatrixXf> a(a_buf.data(), m, n);
+      Eigen::Map<Eigen::MatrixXf> result(r_buf.data(), m, k);
       for (int c = 0; c < 3; ++c) {
         for (int i = 0; i < n; ++i) {
           float* col = a.col(i).data();

@@ -67,6 +67,7 @@ class DiskOlatSource : public OlatSource {
   int width() const override { return width_; }
   int height() const override { return height_; }
   const std::vector<int>& light_index() const override { return light_index_; }
+  int64_t overhead_bytes() const override { return overhead_; }
 
   io::Status ReadBand(int y0, int y1, int threads, std::vector<cv::Mat>* bands) override {
     const int n = static_cast<int>(readers_.size());
@@ -106,8 +107,11 @@ class DiskOlatSource : public OlatSource {
                                                 info.width, info.height, src->width_, src->height_));
       }
       if (info.channels != 3) {
-        return io::Status::BadInput(fmt::format("{}: relighting needs RGB frames, found {} channel(s)", f.path, info.channels));
+        return io::Status::BadInput(
+            fmt::format("{}: relighting needs RGB frames, found {} channel(s)", f.path, info.channels));
       }
+      // Decoder state per frame: about two line blocks of float RGB.
+      src->overhead_ += int64_t{2} * std::max(1, info.lines_per_block) * info.width * 3 * 4 + (64 << 10);
       src->readers_.push_back(std::move(*r));
       src->light_index_.push_back(li);
     }
@@ -117,7 +121,8 @@ class DiskOlatSource : public OlatSource {
       auto d = io::BandReader::Open(camera.dark, decode);
       if (!d.ok()) return d.status();
       if ((*d)->info().width != src->width_ || (*d)->info().height != src->height_ || (*d)->info().channels != 3) {
-        return io::Status::BadInput(fmt::format("{}: dark frame size/channels differ from the OLAT frames", camera.dark));
+        return io::Status::BadInput(
+            fmt::format("{}: dark frame size/channels differ from the OLAT frames", camera.dark));
       }
       src->dark_ = std::move(*d);
     }
@@ -130,6 +135,7 @@ class DiskOlatSource : public OlatSource {
   cv::Mat dark_band_;
   std::vector<int> light_index_;
   int width_ = 0, height_ = 0;
+  int64_t overhead_ = 0;
 };
 
 }  // namespace
@@ -145,7 +151,8 @@ namespace lumenrig::synth {
 io::Status RelightCamera(const io::Session& session, const std::string& camera_id, const std::vector<EnvMap>& maps,
                          const RelightCameraOptions& options, std::vector<cv::Mat>* relit, RelightSummary* summary) {
   const auto t0 = std::chrono::steady_clock::now();
-  if (session.cameras.empty()) return io::Status::BadInput(fmt::format("{}: cameras: session has no cameras", session.path));
+  if (session.cameras.empty())
+    return io::Status::BadInput(fmt::format("{}: cameras: session has no cameras", session.path));
   const io::Camera* camera = camera_id.empty() ? &session.cameras[0] : session.FindCamera(camera_id);
   if (camera == nullptr) {
     return io::Status::BadInput(fmt::format("{}: cameras: no camera with id '{}'", session.path, camera_id));
@@ -198,7 +205,8 @@ io::Expected<std::vector<std::string>> WriteProceduralEnvMaps(const std::string&
     io::ExrWriteOptions w;
     w.pixel_type = io::PixelType::kFloat;
     w.overwrite = overwrite;
-    w.attributes = {{"lumenrig.tool", "lumenrig procedural environment map"}, {"lumenrig.layout", "lat-long, DESIGN.md"}};
+    w.attributes = {{"lumenrig.tool", "lumenrig procedural environment map"},
+                    {"lumenrig.layout", "lat-long, DESIGN.md"}};
     const std::string p = (fs::path(dir) / name).string();
     LUMENRIG_RETURN_IF_ERROR(io::WriteExr(p, image, w));
     paths.push_back(p);

@@ -13,8 +13,8 @@ namespace lumenrig::synth {
 Eigen::Matrix<double, 9, 1> ShBasis9(const Eigen::Vector3d& d) {
   const double x = d.x(), y = d.y(), z = d.z();
   Eigen::Matrix<double, 9, 1> b;
-  b << kShY00, kShY1 * y, kShY1 * z, kShY1 * x, kShY2xy * x * y, kShY2xy * y * z,
-      kShY20 * (3.0 * z * z - 1.0), kShY2xy * x * z, kShY22 * (x * x - y * y);
+  b << kShY00, kShY1 * y, kShY1 * z, kShY1 * x, kShY2xy * x * y, kShY2xy * y * z, kShY20 * (3.0 * z * z - 1.0),
+      kShY2xy * x * z, kShY22 * (x * x - y * y);
   return b;
 }
 

@@ -199,8 +199,8 @@ TEST(Sh, IrradianceOfBandLimitedMapMatchesNumericIntegration) {
     const Eigen::Vector3d n = LatLongDirection(7.0 + 19 * k, 5.0 + 10 * k, 256, 128);
     const Eigen::Vector3d sh = ShIrradiance(c, n);
     const Eigen::Vector3d bf = BruteForceIrradiance(map, n);
-    EXPECT_LT((sh - bf).norm() / bf.norm(), 2e-3) << "n=" << n.transpose() << " sh=" << sh.transpose()
-                                                  << " brute=" << bf.transpose();
+    EXPECT_LT((sh - bf).norm() / bf.norm(), 2e-3)
+        << "n=" << n.transpose() << " sh=" << sh.transpose() << " brute=" << bf.transpose();
   }
 }
 
@@ -234,8 +234,9 @@ TEST(LightMaps, ConstantMapGivesAlbedoOneShadingAndConstantSpecular) {
   normals.at<cv::Vec3f>(4, 5) = cv::Vec3f(0.6f, 0.0f, 0.8f);
   cv::Mat diffuse;
   std::vector<cv::Mat> specular;
-  ASSERT_TRUE(RenderLightMaps(normals, IntrinsicsFromFov(8, 8, 40), Eigen::Matrix3d::Identity(), sh, spec, &diffuse,
-                              &specular).ok());
+  ASSERT_TRUE(
+      RenderLightMaps(normals, IntrinsicsFromFov(8, 8, 40), Eigen::Matrix3d::Identity(), sh, spec, &diffuse, &specular)
+          .ok());
   EXPECT_NEAR(diffuse.at<cv::Vec3f>(3, 3)[2], 2.0f, 2e-3f);
   EXPECT_NEAR(diffuse.at<cv::Vec3f>(4, 5)[0], 0.5f, 2e-3f);
   EXPECT_EQ(diffuse.at<cv::Vec3f>(0, 0)[0], 0.0f);  // background pixel

@@ -37,9 +37,10 @@ class PairsTest : public ::testing::Test {
   static void TearDownTestSuite() { dir_.reset(); }
   static std::string D(const std::string& name) { return *dir_ / name; }
   static std::string PairsArgs(const std::string& out, const std::string& extra = "", int seed = 11) {
-    return fmt::format("pairs {} --envs {} --out {} --count 5 --seed {} --size 24x16 --batch 2 "
-                       "--specular-exponents 1 16 {}",
-                       D("sphere"), D("envs"), out, seed, extra);
+    return fmt::format(
+        "pairs {} --envs {} --out {} --count 5 --seed {} --size 24x16 --batch 2 "
+        "--specular-exponents 1 16 {}",
+        D("sphere"), D("envs"), out, seed, extra);
   }
   static std::unique_ptr<test::TempDir> dir_;
 };
@@ -84,7 +85,8 @@ TEST_F(PairsTest, RelightCliMatchesClosedFormAndCountsClampedTexels) {
   io::ExrWriteOptions w;
   w.pixel_type = io::PixelType::kFloat;
   ASSERT_TRUE(io::WriteExr(D("smooth.exr"), map, w).ok());
-  const auto r = test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
+  const auto r =
+      test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
   ASSERT_EQ(r.exit_code, 0) << r.err;
   EXPECT_NE(r.out.find("2 texel(s)"), std::string::npos) << r.out;
   EXPECT_NE(r.out.find("peak RSS"), std::string::npos) << r.out;
@@ -112,8 +114,34 @@ TEST_F(PairsTest, RelightCliMatchesClosedFormAndCountsClampedTexels) {
   }
   EXPECT_LT(std::sqrt(num / den), 0.02);
   // Existing output without --force: exit 2, file untouched.
-  const auto again = test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
+  const auto again =
+      test::RunCli(fmt::format("relight {} --env {} --out {}", D("sphere"), D("smooth.exr"), D("relit.exr")));
   EXPECT_EQ(again.exit_code, 2);
+}
+
+TEST_F(PairsTest, DarkFrameAndBlackLevelAreSubtracted) {
+  // DESIGN.md: pixel values are linear after the session's black level; a
+  // camera's dark frame is subtracted from every OLAT frame. A session whose
+  // frames carry both must relight exactly like the clean one.
+  test::SphereSessionSpec spec;
+  spec.size = 32;
+  spec.lights = 40;
+  spec.dark_offset = 0.03f;
+  spec.black_level = 0.01f;
+  test::WriteSphereSession(D("sphere_dark"), spec);
+  auto clean = io::LoadSession(D("sphere")), dark = io::LoadSession(D("sphere_dark"));
+  ASSERT_TRUE(clean.ok() && dark.ok()) << dark.status().message();
+  std::vector<synth::EnvMap> maps(1);
+  maps[0].name = "studio";
+  maps[0].radiance = synth::MakeStudioMap(32);
+  std::vector<cv::Mat> a, b;
+  synth::RelightSummary sa, sb;
+  ASSERT_TRUE(synth::RelightCamera(*clean, "", maps, synth::RelightCameraOptions{}, &a, &sa).ok());
+  const io::Status st = synth::RelightCamera(*dark, "cam00", maps, synth::RelightCameraOptions{}, &b, &sb);
+  ASSERT_TRUE(st.ok()) << st.message();
+  // Float frames: differences are float rounding of (x + offset) - offset.
+  EXPECT_LT(cv::norm(a[0], b[0], cv::NORM_INF), 1e-4 * cv::norm(a[0], cv::NORM_INF));
+  EXPECT_EQ(sa.lights, 40);
 }
 
 TEST_F(PairsTest, RelightCliRejectsNonLatLongMap) {

@@ -24,6 +24,8 @@ struct SphereSessionSpec {
   std::string subject = "kh-grey-sphere";
   Eigen::Vector3d albedo{0.7, 0.6, 0.5};
   int cameras = 1;
+  float dark_offset = 0.0f;  ///< > 0: added to every OLAT frame and written as cam/dark.exr
+  float black_level = 0.0f;  ///< added to every stored frame (OLAT and dark); session black_level
 };
 
 inline void WriteJson(const std::string& path, const nlohmann::json& j) {
@@ -57,8 +59,9 @@ inline void WriteSphereSession(const std::string& dir, const SphereSessionSpec& 
   }
   cv::Mat albedo(n, n, CV_32FC3, cv::Scalar(0, 0, 0));
   albedo.setTo(cv::Scalar(spec.albedo.x(), spec.albedo.y(), spec.albedo.z()), alpha > 0);
-  nlohmann::json session = {{"format", "lumenrig.session/1"}, {"subject", spec.subject}, {"rig", "rig.json"},
-                            {"encoding", "linear"}, {"cameras", nlohmann::json::array()}};
+  nlohmann::json session = {
+      {"format", "lumenrig.session/1"}, {"subject", spec.subject},         {"rig", "rig.json"},
+      {"encoding", "linear"},           {"black_level", spec.black_level}, {"cameras", nlohmann::json::array()}};
   io::ExrWriteOptions w;
   w.pixel_type = io::PixelType::kFloat;
   for (int c = 0; c < spec.cameras; ++c) {
@@ -74,12 +77,19 @@ inline void WriteSphereSession(const std::string& dir, const SphereSessionSpec& 
         for (int x = 0; x < n; ++x) {
           const cv::Vec3f nn = normals.at<cv::Vec3f>(y, x);
           const double cs = std::max(0.0, nn[0] * dirs[i].x() + nn[1] * dirs[i].y() + nn[2] * dirs[i].z());
-          for (int k = 0; k < 3; ++k) f.at<cv::Vec3f>(y, x)[k] = static_cast<float>(intensity[i](k) * spec.albedo(k) / M_PI * cs);
+          for (int k = 0; k < 3; ++k)
+            f.at<cv::Vec3f>(y, x)[k] = static_cast<float>(intensity[i](k) * spec.albedo(k) / M_PI * cs);
         }
       }
+      f += cv::Scalar::all(spec.dark_offset + spec.black_level);
       const std::string rel = fmt::format("{}/olat_{:03d}.exr", cam, i);
       (void)io::WriteExr(dir + "/" + rel, f, w);
       camj["olat"].push_back({{"light", i}, {"path", rel}});
+    }
+    if (spec.dark_offset > 0) {
+      cv::Mat dark(n, n, CV_32FC3, cv::Scalar::all(spec.dark_offset + spec.black_level));
+      (void)io::WriteExr(dir + "/" + cam + "/dark.exr", dark, w);
+      camj["dark"] = cam + "/dark.exr";
     }
     (void)io::WriteExr(dir + "/truth/" + cam + "/normals.exr", normals, w);
     (void)io::WriteExr(dir + "/truth/" + cam + "/albedo.exr", albedo, w);

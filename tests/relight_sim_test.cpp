@@ -4,8 +4,8 @@
 #include <cmath>
 #include <cstdio>
 
-#include <Eigen/Geometry>
 #include <gtest/gtest.h>
+#include <Eigen/Geometry>
 
 #include "lumenrig/synth/envmap.h"
 #include "lumenrig/synth/relight.h"

@@ -142,7 +142,8 @@ TEST(Relight, SmallSpotAtLightDirectionReproducesItsOlatFrame) {
   cv::Mat expect = s.frames[j].clone();
   for (int y = 0; y < expect.rows; ++y) {
     for (int x = 0; x < expect.cols; ++x) {
-      for (int k = 0; k < 3; ++k) expect.at<cv::Vec3f>(y, x)[k] *= static_cast<float>(spot / s.rig.lights[j].intensity(k));
+      for (int k = 0; k < 3; ++k)
+        expect.at<cv::Vec3f>(y, x)[k] *= static_cast<float>(spot / s.rig.lights[j].intensity(k));
     }
   }
   EXPECT_LT(cv::norm(relit, expect, cv::NORM_INF) / cv::norm(expect, cv::NORM_INF), 1e-5);

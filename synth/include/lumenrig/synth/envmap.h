@@ -20,10 +20,10 @@ namespace lumenrig::synth {
 
 /// An environment map in memory.
 struct EnvMap {
-  std::string name;           ///< file stem or procedural name
-  std::string path;           ///< source file ("" for procedural maps)
-  cv::Mat radiance;           ///< CV_32FC3, H x 2H, linear RGB, >= 0, finite
-  int64_t clamped_texels = 0; ///< texels that were NaN/Inf/negative and set to 0
+  std::string name;             ///< file stem or procedural name
+  std::string path;             ///< source file ("" for procedural maps)
+  cv::Mat radiance;             ///< CV_32FC3, H x 2H, linear RGB, >= 0, finite
+  int64_t clamped_texels = 0;   ///< texels that were NaN/Inf/negative and set to 0
   double exposure_scale = 1.0;  ///< factor applied by NormaliseExposure (1 = none)
 };
 

@@ -36,8 +36,7 @@ io::Intrinsics ScaleIntrinsics(const io::Intrinsics& in, double sx, double sy);
 /// `normals_camera` CV_32FC3 (camera frame); outputs CV_32FC3 of its size.
 io::Status RenderLightMaps(const cv::Mat& normals_camera, const io::Intrinsics& intrinsics,
                            const Eigen::Matrix3d& camera_from_rig, const ShCoeffs& sh,
-                           const PhongPrefiltered& specular_maps, cv::Mat* diffuse,
-                           std::vector<cv::Mat>* specular);
+                           const PhongPrefiltered& specular_maps, cv::Mat* diffuse, std::vector<cv::Mat>* specular);
 
 /// A view of the environment through a pinhole camera of the given
 /// intrinsics and output size, turned by `yaw_deg` (about camera +y) then
@@ -53,20 +52,20 @@ cv::Mat CompositeOver(const cv::Mat& relit_premultiplied, const cv::Mat& alpha, 
 
 /// Random camera response applied to network inputs (from one seed).
 struct CameraSimOptions {
-  double exposure_sigma_ev = 0.3;   ///< exposure jitter, stops (normal)
+  double exposure_sigma_ev = 0.3;     ///< exposure jitter, stops (normal)
   double white_balance_sigma = 0.05;  ///< per-channel gain jitter, log-normal sigma (G fixed)
-  double read_noise = 0.002;        ///< std of additive noise (linear units)
-  double shot_noise = 0.0005;       ///< variance per unit signal (Poisson-like)
-  double jpeg_probability = 0.5;    ///< chance of a JPEG round trip
+  double read_noise = 0.002;          ///< std of additive noise (linear units)
+  double shot_noise = 0.0005;         ///< variance per unit signal (Poisson-like)
+  double jpeg_probability = 0.5;      ///< chance of a JPEG round trip
   int jpeg_quality_min = 70, jpeg_quality_max = 95;
 };
 
 struct CameraSimDraw {
-  double exposure = 1.0;                       ///< linear multiplier
+  double exposure = 1.0;                         ///< linear multiplier
   Eigen::Vector3d white_balance{1.0, 1.0, 1.0};  ///< per-channel gains
   bool jpeg = false;
   int jpeg_quality = 90;
-  double read_noise = 0.0;   ///< copied from the options
+  double read_noise = 0.0;  ///< copied from the options
   double shot_noise = 0.0;
   uint64_t noise_seed = 0;
 };

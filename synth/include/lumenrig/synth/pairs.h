@@ -34,9 +34,9 @@ inline constexpr const char* kPairsFormat = "lumenrig.pairs/1";
 
 /// Per-camera auxiliary targets at the camera's resolution.
 struct AuxMaps {
-  cv::Mat albedo;   ///< CV_32FC3 linear albedo
-  cv::Mat normals;  ///< CV_32FC3 unit normals, camera frame, 0 outside the subject
-  cv::Mat alpha;    ///< CV_32FC1 0..1
+  cv::Mat albedo;      ///< CV_32FC3 linear albedo
+  cv::Mat normals;     ///< CV_32FC3 unit normals, camera frame, 0 outside the subject
+  cv::Mat alpha;       ///< CV_32FC1 0..1
   std::string source;  ///< where they came from (provenance)
 };
 
@@ -56,12 +56,15 @@ struct PairsOptions {
   std::string out;                    ///< output .h5
   int64_t count = 0;                  ///< samples to write
   uint64_t seed = 0;
-  int width = 256, height = 256;      ///< output size (centre crop to aspect, then area resize)
-  int batch_size = 8;                 ///< samples per stack pass (part of the result: fixed, recorded)
+  int width = 256, height = 256;  ///< output size (centre crop to aspect, then area resize)
+  int batch_size = 16;            ///< samples per stack pass (part of the result: fixed, recorded)
   std::vector<double> specular_exponents{1, 16, 32, 64};
   double target_luminance = 0.5;      ///< each map normalised to this mean BT.709 luminance
   double background_yaw_deg = 25.0;   ///< background view yaw drawn in +-this
   double background_pitch_deg = 8.0;  ///< background view pitch drawn in +-this
+  /// Horizontal field of view of the background view; 0 = the camera's own
+  /// intrinsics (then 40 deg when a camera has none).
+  double background_fov_deg = 0.0;
   CameraSimOptions camera_sim;
   LightWeightOptions weights;
   int64_t mem_budget_bytes = int64_t{1} << 30;
@@ -75,11 +78,11 @@ struct PairsOptions {
 };
 
 struct PairsSummary {
-  int64_t samples_written = 0;   ///< by this run
-  int64_t samples_total = 0;     ///< in the file
-  int64_t resumed_from = 0;      ///< samples already present when resuming
+  int64_t samples_written = 0;  ///< by this run
+  int64_t samples_total = 0;    ///< in the file
+  int64_t resumed_from = 0;     ///< samples already present when resuming
   int64_t train = 0, validation = 0, test = 0;
-  int64_t clamped_texels = 0;    ///< over all maps
+  int64_t clamped_texels = 0;  ///< over all maps
   double max_uncovered_energy_fraction = 0;
   int envs = 0;
   std::vector<std::string> session_ids;

@@ -34,9 +34,9 @@ io::Expected<std::vector<Eigen::Vector3d>> RigLightDirections(const io::Rig& rig
 /// directions, nearest by angle), computed once per rig and map resolution.
 struct LightCells {
   int width = 0, height = 0;
-  std::vector<int32_t> cell;      ///< per texel: light index, or -1 when uncovered
+  std::vector<int32_t> cell;                ///< per texel: light index, or -1 when uncovered
   std::vector<double> cell_solid_angle_sr;  ///< per light: solid angle of its texels
-  double coverage_angle_deg = 0;  ///< texels farther than this from every light are uncovered
+  double coverage_angle_deg = 0;            ///< texels farther than this from every light are uncovered
 };
 
 struct LightWeightOptions {
@@ -87,6 +87,9 @@ class OlatSource {
   /// Rig light index (into rig.lights) of each frame.
   virtual const std::vector<int>& light_index() const = 0;
   int count() const { return static_cast<int>(light_index().size()); }
+  /// Memory the source holds besides the bands it returns (decoder buffers);
+  /// RelightBatch takes it out of the budget.
+  virtual int64_t overhead_bytes() const { return 0; }
   /// Rows [y0, y1) of every frame into (*bands)[i] (CV_32FC3).
   virtual io::Status ReadBand(int y0, int y1, int threads, std::vector<cv::Mat>* bands) = 0;
 };
@@ -132,9 +135,9 @@ struct EnvMap;
 
 /// Options of the `relight` stage.
 struct RelightCameraOptions {
-  double rotate_deg = 0.0;         ///< applied to every map (RotateLatLong)
-  double target_luminance = 0.0;   ///< > 0: NormaliseExposure to this mean BT.709 luminance first
-  double exposure_ev = 0.0;        ///< then multiply by 2^exposure_ev
+  double rotate_deg = 0.0;        ///< applied to every map (RotateLatLong)
+  double target_luminance = 0.0;  ///< > 0: NormaliseExposure to this mean BT.709 luminance first
+  double exposure_ev = 0.0;       ///< then multiply by 2^exposure_ev
   LightWeightOptions weights;
   RelightOptions relight;
 };
@@ -144,9 +147,9 @@ struct RelightSummary {
   int maps = 0;
   int lights = 0;
   int width = 0, height = 0;
-  int64_t clamped_texels = 0;                    ///< over all maps (from loading)
-  std::vector<double> uncovered_energy_fraction; ///< per map
-  std::vector<double> exposure_scale;            ///< per map, total factor applied
+  int64_t clamped_texels = 0;                     ///< over all maps (from loading)
+  std::vector<double> uncovered_energy_fraction;  ///< per map
+  std::vector<double> exposure_scale;             ///< per map, total factor applied
   RelightStats stats;
   double seconds = 0;
 };

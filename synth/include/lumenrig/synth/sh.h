@@ -17,11 +17,11 @@
 namespace lumenrig::synth {
 
 /// Real SH basis constants of Ramamoorthi and Hanrahan 2001, eq. 3.
-inline constexpr double kShY00 = 0.282095;  ///< Y00
-inline constexpr double kShY1 = 0.488603;   ///< Y1m: y, z, x
-inline constexpr double kShY2xy = 1.092548; ///< Y2-2, Y2-1, Y21: xy, yz, xz
-inline constexpr double kShY20 = 0.315392;  ///< Y20: 3z^2 - 1
-inline constexpr double kShY22 = 0.546274;  ///< Y22: x^2 - y^2
+inline constexpr double kShY00 = 0.282095;   ///< Y00
+inline constexpr double kShY1 = 0.488603;    ///< Y1m: y, z, x
+inline constexpr double kShY2xy = 1.092548;  ///< Y2-2, Y2-1, Y21: xy, yz, xz
+inline constexpr double kShY20 = 0.315392;   ///< Y20: 3z^2 - 1
+inline constexpr double kShY22 = 0.546274;   ///< Y22: x^2 - y^2
 /// Clamped-cosine convolution constants A_l (Ramamoorthi and Hanrahan 2001, eq. 8/9).
 inline constexpr double kShA0 = M_PI;
 inline constexpr double kShA1 = 2.0 * M_PI / 3.0;
@@ -53,9 +53,8 @@ struct PhongPrefiltered {
 /// Prefilters `latlong` (resampled to source_height x 2 source_height with
 /// area averaging first) for each exponent (> 0). Brute-force quadrature;
 /// cost out_texels x source_texels x exponents, parallel over output rows.
-io::Status PrefilterPhong(const cv::Mat& latlong, const std::vector<double>& exponents,
-                          PhongPrefiltered* out, int out_height = 32, int source_height = 64,
-                          int threads = 0);
+io::Status PrefilterPhong(const cv::Mat& latlong, const std::vector<double>& exponents, PhongPrefiltered* out,
+                          int out_height = 32, int source_height = 64, int threads = 0);
 
 /// Area-averaged resampling of a lat-long map to height x 2 height.
 cv::Mat ResampleLatLong(const cv::Mat& latlong, int height);
