@@ -11,6 +11,7 @@
 #include <nlohmann/json.hpp>
 
 #include "command.h"
+#include "lumenrig/capture_io/parallel.h"
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
 
@@ -69,12 +70,22 @@ struct CameraReport {
 };
 
 // Probes all frames of a camera and checks they share one size.
-io::Status ProbeCamera(const io::Camera& cam, bool verify, CameraReport* report) {
+io::Status ProbeCamera(const io::Camera& cam, bool verify, int threads, CameraReport* report) {
   report->camera = &cam;
-  for (const FrameRef& ref : FramesOf(cam)) {
+  const std::vector<FrameRef> refs = FramesOf(cam);
+  if (verify) {
+    // Decode every frame once, frames in parallel; report the first failure
+    // in list order so the message does not depend on scheduling.
+    std::vector<io::Status> results(refs.size());
+    io::ParallelFor(0, static_cast<int64_t>(refs.size()), 1, threads,
+                    [&](int64_t b, int64_t e) {
+                      for (int64_t i = b; i < e; ++i) results[static_cast<size_t>(i)] = VerifyPixels(refs[static_cast<size_t>(i)].path);
+                    });
+    for (const auto& st : results) LUMENRIG_RETURN_IF_ERROR(st);
+  }
+  for (const FrameRef& ref : refs) {
     auto info = io::ProbeImage(ref.path);
     if (!info.ok()) return info.status();
-    if (verify) LUMENRIG_RETURN_IF_ERROR(VerifyPixels(ref.path));
     report->frames.push_back({ref, *info});
     const ProbedFrame& f = report->frames.back();
     if (report->frames.size() == 1) {
@@ -194,13 +205,13 @@ std::string RunStats(std::chrono::steady_clock::time_point start) {
   return "info: done in " + TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count());
 }
 
-int RunInfo(const std::string& session_path, bool as_json, bool verify) {
+int RunInfo(const std::string& session_path, bool as_json, bool verify, int threads) {
   const auto start = std::chrono::steady_clock::now();
   auto session = io::LoadSession(session_path);
   if (!session.ok()) return ReportError("info", session.status());
   std::vector<CameraReport> cams(session->cameras.size());
   for (size_t i = 0; i < session->cameras.size(); ++i) {
-    const io::Status status = ProbeCamera(session->cameras[i], verify, &cams[i]);
+    const io::Status status = ProbeCamera(session->cameras[i], verify, threads, &cams[i]);
     if (!status.ok()) return ReportError("info", status);
   }
   if (as_json) {
@@ -222,7 +233,9 @@ CommandRegistrar reg({"info", "Validate a session and its rig; list cameras, lig
                         sub->add_flag("--json", *as_json, "print machine-readable JSON on stdout");
                         sub->add_flag("--verify", *verify,
                                       "decode every frame fully (finds truncated pixel data; slower)");
-                        return [=] { return RunInfo(*session, *as_json, *verify); };
+                        auto threads = std::make_shared<int>(0);
+                        sub->add_option("--threads", *threads, "Threads for --verify (0 = all cores)");
+                        return [=] { return RunInfo(*session, *as_json, *verify, *threads); };
                       }});
 
 }  // namespace

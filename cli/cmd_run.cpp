@@ -193,7 +193,7 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
     io::Status s = ParseStages(args->stages, &o.stages);
     if (!s.ok()) return ReportError("run", s);
     auto budget = solvers::ParseByteSize(args->mem_budget);
-    if (!budget.ok()) return ReportError("run", budget.status().WithPrefix("--mem-budget"));
+    if (!budget.ok()) return ReportError("run", budget.status());
     o.mem_budget_bytes = *budget;
     o.normals_options = {{"method", args->normals_method}};
     o.matte_options = {{"method", args->matte_method}};

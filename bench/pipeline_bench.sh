@@ -1,0 +1,89 @@
+#!/usr/bin/env bash
+# Benchmarks of `lumenrig run` (issue: staged pipeline), side by side in one run:
+#  1. decode floor: the whole run (no pairs) vs decoding every input frame once
+#     with the same threads (`lumenrig info --verify` decodes every frame);
+#  2. against the usual lab script (bench/reference/lab_pipeline.py, numpy +
+#     OpenCV + h5py): wall time and peak RSS ratios;
+#  3. growth: run time over three light counts and three sizes (fitted
+#     exponent of time against lights x pixels) and peak RSS as lights grow.
+# Usage: bench/pipeline_bench.sh [BUILD_DIR] [SIZE] [LIGHTS] [THREADS] [WORK_DIR]
+set -euo pipefail
+BUILD=${1:-build}
+SIZE=${2:-512}
+LIGHTS=${3:-156}
+THREADS=${4:-2}
+WORK=${5:-/tmp/lumenrig-pipeline-bench}
+LR="$BUILD/cli/lumenrig"
+PY=/usr/bin/python3
+HERE=$(cd "$(dirname "$0")" && pwd)
+mkdir -p "$WORK"
+
+# Runs a command, prints "wall_s peak_rss_mib" (GNU time is not assumed:
+# a tiny Python wrapper reads the child's rusage).
+measure() {
+  $PY - "$@" <<'PYEOF'
+import resource, subprocess, sys, time
+t = time.time()
+rc = subprocess.call(sys.argv[1:], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+wall = time.time() - t
+rss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
+if rc != 0:
+    sys.exit(f"command failed ({rc}): {' '.join(sys.argv[1:])}")
+print(f"{wall:.2f} {rss:.0f}")
+PYEOF
+}
+
+session() {  # session LIGHTS SIZE -> path (simulated once, cached)
+  local dir="$WORK/s_${1}_${2}"
+  if [ ! -f "$dir/session.json" ]; then
+    "$LR" simulate --out "$dir" --lights "$1" --size "${2}x${2}" --cameras 2 --threads "$THREADS" \
+      --tracking-every 0 >/dev/null
+  fi
+  echo "$dir"
+}
+
+S=$(session "$LIGHTS" "$SIZE")
+echo "session: $S (2 cameras x $LIGHTS lights, ${SIZE}x${SIZE}, threads $THREADS)"
+
+read -r dec_s dec_rss < <(measure "$LR" info "$S" --verify --threads "$THREADS")
+rm -rf "$WORK/out"
+read -r run_s run_rss < <(measure "$LR" run "$S" --out "$WORK/out" --stages check,normals,matte,assemble \
+  --threads "$THREADS" --mem-budget 2G)
+rm -f "$WORK/ref.h5"
+read -r ref_s ref_rss < <(measure "$PY" "$HERE/reference/lab_pipeline.py" "$S" "$WORK/ref.h5")
+echo
+echo "| measurement | wall s | peak RSS MiB |"
+echo "|---|---|---|"
+echo "| decode every frame once (info --verify) | $dec_s | $dec_rss |"
+echo "| lumenrig run (check, normals, matte, assemble) | $run_s | $run_rss |"
+echo "| reference lab script (numpy/OpenCV/h5py) | $ref_s | $ref_rss |"
+$PY - "$dec_s" "$run_s" "$ref_s" "$run_rss" "$ref_rss" <<'PYEOF'
+import sys
+dec, run, ref, run_rss, ref_rss = map(float, sys.argv[1:])
+print(f"\nrun / decode floor: {run / dec:.2f}x (target <= 1.5x)")
+print(f"reference / run (speed-up): {ref / run:.2f}x (target >= 5x)")
+print(f"run peak RSS / reference peak RSS: {run_rss / ref_rss:.2f} (target <= 0.25)")
+PYEOF
+
+echo
+echo "growth (run without pairs; 2 cameras):"
+echo "| lights | size | lights x pixels | wall s | peak RSS MiB |"
+echo "|---|---|---|---|---|"
+rows=()
+for spec in "$((LIGHTS / 4)) $SIZE" "$((LIGHTS / 2)) $SIZE" "$LIGHTS $SIZE" "$LIGHTS $((SIZE / 2))"; do
+  set -- $spec
+  s=$(session "$1" "$2")
+  rm -rf "$WORK/out_g"
+  read -r t r < <(measure "$LR" run "$s" --out "$WORK/out_g" --stages check,normals,matte,assemble \
+    --threads "$THREADS" --mem-budget 2G)
+  echo "| $1 | ${2}x${2} | $(($1 * $2 * $2)) | $t | $r |"
+  rows+=("$(($1 * $2 * $2)) $t")
+done
+$PY - "${rows[@]}" <<'PYEOF'
+import math, sys
+pts = [tuple(map(float, a.split())) for a in sys.argv[1:]]
+xs = [math.log(p[0]) for p in pts]; ys = [math.log(p[1]) for p in pts]
+n = len(xs); mx = sum(xs) / n; my = sum(ys) / n
+slope = sum((x - mx) * (y - my) for x, y in zip(xs, ys)) / sum((x - mx) ** 2 for x in xs)
+print(f"\nfitted exponent of time vs lights x pixels: {slope:.2f} (1.0 = linear)")
+PYEOF
