@@ -81,6 +81,9 @@ TEST_F(PipelineTest, RunsEndToEndAndH5pyOutputsMatchStageExrs) {
     EXPECT_NE(r.out.find(std::string(id) + ".h5"), std::string::npos) << "output paths are printed";
   }
   EXPECT_NE(r.out.find("stage"), std::string::npos) << "--stats table";
+  // HDF5 used from worker threads must not print at exit ("infinite loop
+  // closing library") or leak its error stacks to the terminal.
+  EXPECT_EQ(r.err.find("HDF5"), std::string::npos) << r.err;
   // h5py (outside reader) against OpenCV's EXR reader (outside reader) of the
   // per-stage outputs: half precision of the stored values (2^-11 relative).
   const std::string script = out / "compare.py";
