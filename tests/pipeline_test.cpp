@@ -171,9 +171,9 @@ TEST_F(PipelineTest, DryRunShowsWhatAnOptionChangeReruns) {
       ++untouched;
     }
   }
-  EXPECT_EQ(matte, 4);        // 2 sessions x 2 cameras
-  EXPECT_EQ(downstream, 4);   // assemble + pairs per session
-  EXPECT_EQ(untouched, 6);    // check + 2 normals per session
+  EXPECT_EQ(matte, 4);       // 2 sessions x 2 cameras
+  EXPECT_EQ(downstream, 4);  // assemble + pairs per session
+  EXPECT_EQ(untouched, 6);   // check + 2 normals per session
   // Modifying an output is noticed too.
   std::ofstream(out / "kh-bust-03/cam00/normals/albedo.exr", std::ios::app) << "x";
   auto modified = RunCli(Args(out.path(), "--dry-run"));
@@ -192,7 +192,8 @@ TEST_F(PipelineTest, OutputsAreIdenticalForOneAndTwoThreads) {
 
 TEST_F(PipelineTest, QaFailStopsLaterStagesUnlessForced) {
   TempDir bad, out, forced;
-  auto sim = RunCli("simulate --out " + bad.path() + "/s --cameras 1 --lights 40 --size 96x72 --fault-dead-light cam00:3");
+  auto sim =
+      RunCli("simulate --out " + bad.path() + "/s --cameras 1 --lights 40 --size 96x72 --fault-dead-light cam00:3");
   ASSERT_EQ(sim.exit_code, 0) << sim.err;
   auto r = RunCli("run " + bad.path() + "/s --out " + out.path() + " --stages check,normals,matte,assemble");
   EXPECT_EQ(r.exit_code, 1) << r.out << r.err;
