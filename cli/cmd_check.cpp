@@ -2,6 +2,7 @@
 #include <chrono>
 #include <cmath>
 #include <cstdio>
+#include <filesystem>
 #include <fstream>
 #include <unistd.h>
 
@@ -63,8 +64,12 @@ int Run(const CheckArgs& args) {
 
   // Refuse to clobber outputs before any work (no partial output on bad input).
   const std::string html_path = args.report_dir.empty() ? "" : args.report_dir + "/check_report.html";
-  if (!args.json_path.empty())
+  if (!args.json_path.empty()) {
     if (auto st = io::CheckOutputPath(args.json_path, args.force); !st.ok()) return ReportError("check", st);
+    const std::string parent = std::filesystem::path(args.json_path).parent_path().string();
+    if (!parent.empty())
+      if (auto st = io::EnsureDirectory(parent); !st.ok()) return ReportError("check", st);
+  }
   if (!html_path.empty())
     if (auto st = io::CheckOutputPath(html_path, args.force); !st.ok()) return ReportError("check", st);
 

@@ -161,7 +161,8 @@ io::Status CheckSession(const io::Session& session, const CheckOptions& options_
 
   // Mark frames named by findings (contact sheet) and compute the verdict.
   for (const auto& line : lines) {
-    result->verdict = Worse(result->verdict, line.verdict);
+    // SKIP lines never fail a session: the verdict is PASS, WARN or FAIL.
+    if (line.verdict != Verdict::kSkip) result->verdict = Worse(result->verdict, line.verdict);
     for (const auto& f : line.findings) {
       for (auto& s : result->frames) {
         const bool same_path = !f.frame.empty() && f.frame == s.path;

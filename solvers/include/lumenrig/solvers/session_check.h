@@ -148,8 +148,12 @@ struct FrameSummary {
   std::vector<unsigned char> thumbnail_png;  ///< 8-bit sRGB PNG, full scale = white
   int grid_w = 0, grid_h = 0;
   std::vector<float> grid;         ///< luminance per analysis cell (mean over mask pixels)
-  std::vector<float> motion;       ///< tracking only: area-reduced luminance, motion_w x motion_h
-  int motion_w = 0, motion_h = 0;
+  // Tracking frames only (computed in the reading pass against the camera's
+  // first tracking frame, so no tracking frame is kept in memory):
+  bool has_motion = false;
+  double box_energy = 0.0;         ///< luminance summed over the subject's box (mask dilated)
+  double shift_x_px = 0.0;         ///< subject shift against the first tracking frame (full-res px)
+  double shift_y_px = 0.0;
 };
 
 struct TrackingPoint {
@@ -173,11 +177,6 @@ struct CameraSummary {
   double align_dx_px = 0.0, align_dy_px = 0.0;  ///< backlit relative to clean plate
   std::vector<TrackingPoint> tracking;
   std::vector<int> missing_lights;  ///< rig lights without an OLAT frame for this camera
-  /// Subject motion window at the tracking frames' reduced resolution:
-  /// factor, crop (x, y, w, h) and the weights over the crop (w x h).
-  int motion_factor = 1;
-  int motion_crop[4] = {0, 0, 0, 0};
-  std::vector<float> motion_window;
 };
 
 struct CheckResult {
