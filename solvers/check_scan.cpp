@@ -23,9 +23,9 @@ constexpr int kHistBins = 4096;
 /// Per-camera state built before the OLAT pass.
 struct CameraContext {
   int width = 0, height = 0;
-  cv::Mat mask;             // CV_8U, 255 = subject; full resolution
-  std::vector<int> grid_x;  // column -> analysis cell column
-  std::vector<int> grid_y;  // row -> analysis cell row
+  cv::Mat mask;                         // CV_8U, 255 = subject; full resolution
+  std::vector<int> grid_x;              // column -> analysis cell column
+  std::vector<int> grid_y;              // row -> analysis cell row
   std::vector<int> row_begin, row_end;  // per row, extent [begin, end) of mask pixels
   int grid_w = 0, grid_h = 0;
   double dark_lum = 0.0;
@@ -307,8 +307,8 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
   if (decode.encoding == io::Encoding::kSrgb) saturation = io::SrgbToLinear(static_cast<float>(saturation));
   saturation -= decode.black_level;
   if (!(saturation > 0))
-    return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}", session.path,
-                                            decode.black_level, options.saturation_level));
+    return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}",
+                                            session.path, decode.black_level, options.saturation_level));
 
   const int ncam = static_cast<int>(session.cameras.size());
   result->cameras.assign(ncam, CameraSummary{});
@@ -423,7 +423,8 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
       // Subject window for motion (tracking frames are area-reduced by an
       // integer factor): the mask dilated and feathered, cropped to its box,
       // times a Hann window, so the static background does not anchor the peak.
-      ctx.motion_factor = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / options.motion_max_px)));
+      ctx.motion_factor =
+          std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / options.motion_max_px)));
       if (!cam.tracking.empty()) {
         const int mf = ctx.motion_factor, mw = ctx.width / mf, mh = ctx.height / mf;
         cv::Rect crop(0, 0, mw, mh);
@@ -509,8 +510,10 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
       ctx.grid_h = std::max(1, static_cast<int>(std::lround(ctx.height * std::min(1.0, gscale))));
       ctx.grid_x.resize(ctx.width);
       ctx.grid_y.resize(ctx.height);
-      for (int x = 0; x < ctx.width; ++x) ctx.grid_x[x] = static_cast<int>(static_cast<int64_t>(x) * ctx.grid_w / ctx.width);
-      for (int y = 0; y < ctx.height; ++y) ctx.grid_y[y] = static_cast<int>(static_cast<int64_t>(y) * ctx.grid_h / ctx.height);
+      for (int x = 0; x < ctx.width; ++x)
+        ctx.grid_x[x] = static_cast<int>(static_cast<int64_t>(x) * ctx.grid_w / ctx.width);
+      for (int y = 0; y < ctx.height; ++y)
+        ctx.grid_y[y] = static_cast<int>(static_cast<int64_t>(y) * ctx.grid_h / ctx.height);
       std::vector<int> in(static_cast<size_t>(ctx.grid_w) * ctx.grid_h, 0), all(in.size(), 0);
       for (int y = 0; y < ctx.height; ++y) {
         const unsigned char* m = ctx.mask.empty() ? nullptr : ctx.mask.ptr<unsigned char>(y);
@@ -531,7 +534,8 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
         cv::Mat grid;
         ScanFrame(jobs[first_tracking[c]], ctx, decode, options, saturation, &s, &grid);
         scanned[first_tracking[c]] = 1;
-        if (!grid.empty() && ctx.motion_crop.area() > 0 && (ctx.motion_crop & cv::Rect(0, 0, grid.cols, grid.rows)) == ctx.motion_crop) {
+        if (!grid.empty() && ctx.motion_crop.area() > 0 &&
+            (ctx.motion_crop & cv::Rect(0, 0, grid.cols, grid.rows)) == ctx.motion_crop) {
           ctx.motion_ref = grid(ctx.motion_crop).clone();
           s.has_motion = true;
           s.box_energy = cv::sum(ctx.motion_ref)[0];

@@ -180,10 +180,9 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
     const auto& td = cs.tracking[worst_d];
     const double dval = std::abs(td.drift_pct);
     const double step_dv = cs.tracking[step_d].drift_pct - cs.tracking[step_d - 1].drift_pct;
-    const std::string d_interval = fmt::format("largest step {}{}% between the tracking frames {} and {}",
-                                               step_dv >= 0 ? "+" : "", Num(step_dv, 2),
-                                               After(cs.tracking[step_d - 1].after_light),
-                                               After(cs.tracking[step_d].after_light));
+    const std::string d_interval = fmt::format(
+        "largest step {}{}% between the tracking frames {} and {}", step_dv >= 0 ? "+" : "", Num(step_dv, 2),
+        After(cs.tracking[step_d - 1].after_light), After(cs.tracking[step_d].after_light));
     if (dval >= drift.value) {
       drift.value = dval;
       drift_where = fmt::format("camera {}, tracking frame {}; {}", cs.id, After(td.after_light), d_interval);
@@ -206,8 +205,8 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
     const auto& b = cs.tracking[step_m];
     const std::string m_interval =
         fmt::format("largest step {} px between the tracking frames {} and {}",
-                    Num(std::hypot(b.shift_x_px - a.shift_x_px, b.shift_y_px - a.shift_y_px), 2),
-                    After(a.after_light), After(b.after_light));
+                    Num(std::hypot(b.shift_x_px - a.shift_x_px, b.shift_y_px - a.shift_y_px), 2), After(a.after_light),
+                    After(b.after_light));
     if (mval >= motion.value) {
       motion.value = mval;
       motion_where = fmt::format("camera {}, tracking frame {}; {}", cs.id, After(tm.after_light), m_interval);
@@ -219,10 +218,10 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
       f.lights = {tm.after_light};
       f.frame = tr[worst_m]->path;
       f.value = mval;
-      f.message = fmt::format("camera {}: subject moved {} px (dx {}, dy {}) from the first tracking frame to the one "
-                              "{}; {}",
-                              cs.id, Num(mval, 2), Num(tm.shift_x_px, 2), Num(tm.shift_y_px, 2), After(tm.after_light),
-                              m_interval);
+      f.message = fmt::format(
+          "camera {}: subject moved {} px (dx {}, dy {}) from the first tracking frame to the one "
+          "{}; {}",
+          cs.id, Num(mval, 2), Num(tm.shift_x_px, 2), Num(tm.shift_y_px, 2), After(tm.after_light), m_interval);
       AddFinding(&motion, std::move(f));
     }
   }
@@ -257,9 +256,10 @@ void CheckMatting(const io::Session& session, const CheckOptions& options, Check
       f.camera = cs.id;
       f.frame = session.cameras[c].backlit;
       f.value = mag;
-      f.message = fmt::format("camera {}: backlit frame is shifted {} px (dx {}, dy {}) against the clean plate; the "
-                              "camera moved between them, difference matting will leave edges",
-                              cs.id, Num(mag, 2), Num(cs.align_dx_px, 2), Num(cs.align_dy_px, 2));
+      f.message = fmt::format(
+          "camera {}: backlit frame is shifted {} px (dx {}, dy {}) against the clean plate; the "
+          "camera moved between them, difference matting will leave edges",
+          cs.id, Num(mag, 2), Num(cs.align_dx_px, 2), Num(cs.align_dy_px, 2));
       AddFinding(&align, std::move(f));
     }
   }
