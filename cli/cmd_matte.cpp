@@ -61,7 +61,9 @@ int Run(const MatteArgs& args) {
   fmt::print("lumenrig matte: camera {} method {} noise sigma {:.3g}{}, {}\n", result.camera_id,
              solvers::MatteMethodName(result.method), result.noise_sigma,
              result.unknown_pixels > 0
-                 ? fmt::format(" band {} px ({} CG iterations)", result.unknown_pixels, result.cg_iterations)
+                 ? fmt::format(" band {} px ({})", result.unknown_pixels,
+                               result.direct_solve ? std::string("direct solve")
+                                                   : fmt::format("{} CG iterations", result.cg_iterations))
                  : std::string(),
              TimeAndMemoryLine(wall));
   return 0;

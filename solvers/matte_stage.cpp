@@ -270,10 +270,13 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
       LUMENRIG_RETURN_IF_ERROR(RefineClosedForm(lit, plate, result.trimap, co, &result.alpha, &cstats, threads));
       result.noise_sigma = tstats.difference_sigma / std::sqrt(2.0);
       result.unknown_pixels = cstats.unknown_pixels;
+      result.direct_solve = cstats.direct;
       result.cg_iterations = cstats.iterations;
       if (!cstats.converged) {
-        result.notes.push_back(fmt::format("conjugate gradient stopped at relative residual {:.2g} after {} iterations",
-                                           cstats.relative_residual, cstats.iterations));
+        result.notes.push_back(
+            cstats.direct ? fmt::format("band solve left relative residual {:.2g}", cstats.relative_residual)
+                          : fmt::format("conjugate gradient stopped at relative residual {:.2g} after {} iterations",
+                                        cstats.relative_residual, cstats.iterations));
       }
       LUMENRIG_RETURN_IF_ERROR(EstimateForeground(lit, plate, result.alpha, options.foreground, &result.foreground));
       result.confidence = DifferenceConfidence(result.trimap, result.foreground, plate, tstats.difference_sigma);

@@ -10,6 +10,7 @@
 #include <fmt/format.h>
 #include <Eigen/Dense>
 #include <Eigen/IterativeLinearSolvers>
+#include <Eigen/SparseCholesky>
 #include <Eigen/SparseCore>
 #include <opencv2/imgproc.hpp>
 
@@ -332,7 +333,25 @@ io::Status RefineClosedForm(const cv::Mat& image, const cv::Mat& plate, const cv
   local.nonzeros = a_matrix.nonZeros();
 
   Eigen::VectorXd solution;
-  {
+  if (options.direct_solve) {
+    // The band is a thin strip: with a fill-reducing ordering the factor stays
+    // sparse and one factorisation replaces the CG iterations, whose number
+    // grows with the band's width (docs/matting.md, Cost).
+    Eigen::SimplicialLDLT<Eigen::SparseMatrix<double>, Eigen::Lower, Eigen::AMDOrdering<int>> ldlt;
+    ldlt.compute(a_matrix);
+    if (ldlt.info() == Eigen::Success && (ldlt.vectorD().array() > 0).all()) {
+      solution = ldlt.solve(rhs);
+      if (ldlt.info() != Eigen::Success || !solution.allFinite()) solution.resize(0);
+    }
+    if (solution.size() == n) {
+      local.direct = true;
+      local.iterations = 0;
+      const double rhs_norm = rhs.norm();
+      local.relative_residual = rhs_norm > 0 ? (a_matrix * solution - rhs).norm() / rhs_norm : 0.0;
+      local.converged = local.relative_residual <= options.cg_tolerance;
+    }
+  }
+  if (solution.size() != n) {
     Eigen::ConjugateGradient<Eigen::SparseMatrix<double>, Eigen::Lower | Eigen::Upper,
                              Eigen::IncompleteCholesky<double, Eigen::Lower, Eigen::AMDOrdering<int>>>
         cg;
