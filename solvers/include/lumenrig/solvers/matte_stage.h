@@ -52,13 +52,13 @@ struct MatteResult {
   std::string camera_id;
   MatteMethod method = MatteMethod::kAuto;  ///< the method actually run
   cv::Mat alpha;                            ///< CV_32FC1 in [0, 1]
-  cv::Mat foreground;          ///< CV_32FC3 un-premultiplied linear RGB; empty when no lit frame exists (backlit)
-  cv::Mat trimap;              ///< CV_8UC1: 0 background, 128 unknown, 255 foreground
-  cv::Mat confidence;          ///< CV_32FC1 in [0, 1]; 0 where the solve failed (plate zeros)
-  double noise_sigma = 0.0;    ///< per-channel frame sigma used
-  int64_t unknown_pixels = 0;  ///< band pixels solved (difference method)
-  bool direct_solve = false;   ///< band system solved by sparse factorisation (difference method)
-  int cg_iterations = 0;       ///< conjugate-gradient iterations when not direct
+  cv::Mat foreground;               ///< CV_32FC3 un-premultiplied linear RGB; empty when no lit frame exists (backlit)
+  cv::Mat trimap;                   ///< CV_8UC1: 0 background, 128 unknown, 255 foreground
+  cv::Mat confidence;               ///< CV_32FC1 in [0, 1]; 0 where the solve failed (plate zeros)
+  double noise_sigma = 0.0;         ///< per-channel frame sigma used
+  int64_t unknown_pixels = 0;       ///< band pixels solved (difference method)
+  bool direct_solve = false;        ///< band system solved by sparse factorisation (difference method)
+  int cg_iterations = 0;            ///< conjugate-gradient iterations when not direct
   std::vector<std::string> inputs;  ///< session keys read, e.g. "cameras[0].clean_plate"
   std::vector<std::string> notes;   ///< one-line remarks for the user (e.g. no foreground)
   nlohmann::json options;           ///< MatteOptionsToJson of the run
