@@ -10,6 +10,7 @@
 #include <memory>
 
 #include <fmt/format.h>
+#include <ImfThreading.h>
 #include <opencv2/imgproc.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
@@ -358,7 +359,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     io_opts.intrinsics = cam.intrinsics;
     io_opts.reference_depth_m = reference_depth_m;
     DepthMap depth;
-    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth));
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth, nthreads));
     PointsFromDepth(depth.depth, cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
     out->normals.copyTo(previous_normals);
     out->confidence.copyTo(previous_confidence);
@@ -378,7 +379,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       io_opts.intrinsics = cam.intrinsics;
       io_opts.reference_depth_m = reference_depth_m;
     }
-    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &out->depth));
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &out->depth, nthreads));
     out->integrate_seconds += Seconds(t3, Clock::now());
   }
   return io::Status::Ok();
@@ -471,10 +472,17 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
     });
   }
   jobs.push_back([&] { return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite); });
+  // OpenEXR compresses the line blocks of each file on its own pool too, so
+  // the two large RGB files do not leave a core idle at the end; the bytes
+  // written do not depend on it. Restored afterwards (process-wide setting).
+  const int exr_threads_before = Imf::globalThreadCount();
+  const int exr_threads = io::ResolveThreads(threads);
+  if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads);
   std::vector<io::Status> status(jobs.size());
   io::ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = jobs[static_cast<size_t>(j)]();
   });
+  if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads_before);
   for (const auto& st : status) {
     if (st.ok()) continue;
     // No partial output: remove what this call wrote.
