@@ -8,6 +8,7 @@
 #include <filesystem>
 #include <functional>
 #include <memory>
+#include <new>
 
 #include <fmt/format.h>
 #include <ImfThreading.h>
@@ -256,7 +257,10 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   out->all_zero_lights.clear();
 
   const int64_t slot = rows * width * channels;
-  std::vector<float> band(static_cast<size_t>(slot * n));
+  // Left uninitialised: every element the solve reads is written by a band
+  // reader first, and zero-filling a multi-GiB stack is a pass over memory.
+  std::unique_ptr<float[]> band(new (std::nothrow) float[static_cast<size_t>(slot * n)]);
+  if (!band) return io::Status::Internal(fmt::format("cannot allocate the {} band buffer", Mib(slot * n * 4)));
   cv::Mat dark_band;
   std::vector<float> frame_max(static_cast<size_t>(n), 0.0f);
   const int nthreads = io::ResolveThreads(threads);
@@ -282,7 +286,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
             const auto& frame = cam.olat[static_cast<size_t>(i)];
-            float* dst = band.data() + i * slot;
+            float* dst = band.get() + i * slot;
             cv::Mat view(band_rows, width, CV_MAKETYPE(CV_32F, channels), dst);
             io::Status s;
             if (keep_open) {
@@ -321,7 +325,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
         BlockInput in;
-        in.data = band.data() + b * channels;
+        in.data = band.get() + b * channels;
         in.light_stride = slot;
         in.pixels = e - b;
         in.channels = channels;
@@ -365,8 +369,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     out->confidence.copyTo(previous_confidence);
     out->integrate_seconds += Seconds(t2, Clock::now());
   }
-  band.clear();
-  band.shrink_to_fit();
+  band.reset();
   readers.clear();
   points.release();
   previous_normals.release();
