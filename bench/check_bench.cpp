@@ -9,7 +9,8 @@
 // The session is generated once into --dir (kept for reruns): a Lambertian
 // sphere (albedo 0.6) over a dim textured backdrop lit by a Fibonacci dome,
 // half-float ZIP OpenEXR frames with Gaussian noise, a tracking frame every 16
-// lights, a dark frame and a mask per camera. A second session file in the
+// lights, a dark frame and a mask per camera. Cameras after the first
+// hard-link the first camera's frame files (same decoding work per frame). A second session file in the
 // same folder lists only the first --small-lights lights (same frames).
 #include <sys/resource.h>
 #include <sys/wait.h>
@@ -21,6 +22,7 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <functional>
 #include <random>
 #include <string>
 
@@ -96,7 +98,8 @@ void WriteSessionJson(const Args& a, int lights, const std::string& name, const 
   rig["name"] = fmt::format("bench-dome-{}", lights);
   const auto dirs = synth::FibonacciDome(a.lights, -20.0);
   for (int i = 0; i < lights; ++i)
-    rig["lights"].push_back({{"id", i}, {"direction", {dirs[i].x(), dirs[i].y(), dirs[i].z()}}, {"intensity", {1.0, 1.0, 1.0}}});
+    rig["lights"].push_back(
+        {{"id", i}, {"direction", {dirs[i].x(), dirs[i].y(), dirs[i].z()}}, {"intensity", {1.0, 1.0, 1.0}}});
   std::ofstream(a.dir + "/" + rig_name) << rig.dump(1);
   nlohmann::json s;
   s["format"] = "lumenrig.session/1";
@@ -108,8 +111,10 @@ void WriteSessionJson(const Args& a, int lights, const std::string& name, const 
     jc["id"] = cam;
     // Camera c sits at yaw 25 deg * c (same rotation as Generate), 1.5 m away.
     const double yaw = 25.0 * c * M_PI / 180.0;
-    jc["camera_from_rig"] = {{std::cos(yaw), 0, -std::sin(yaw), 0}, {0, 1, 0, 0}, {std::sin(yaw), 0, std::cos(yaw), -1.5}, {0, 0, 0, 1}};
-    for (int i = 0; i < lights; ++i) jc["olat"].push_back({{"light", i}, {"path", fmt::format("{}/olat_{:03d}.exr", cam, i)}});
+    jc["camera_from_rig"] = {
+        {std::cos(yaw), 0, -std::sin(yaw), 0}, {0, 1, 0, 0}, {std::sin(yaw), 0, std::cos(yaw), -1.5}, {0, 0, 0, 1}};
+    for (int i = 0; i < lights; ++i)
+      jc["olat"].push_back({{"light", i}, {"path", fmt::format("{}/olat_{:03d}.exr", cam, i)}});
     for (int i = 15; i < lights; i += 16)
       jc["tracking"].push_back({{"after_light", i}, {"path", fmt::format("{}/track_{:03d}.exr", cam, i)}});
     jc["dark"] = cam + "/dark.exr";
@@ -122,6 +127,9 @@ void WriteSessionJson(const Args& a, int lights, const std::string& name, const 
 int Generate(const Args& a) {
   if (fs::exists(a.dir + "/session.json")) return 0;
   fs::create_directories(a.dir);
+  // Frames already written by an interrupted run are kept. Cameras after the
+  // first hard-link the first camera's frames (decoding cost per frame is the
+  // same; generation time halves); their camera_from_rig still differs.
   const auto dirs = synth::FibonacciDome(a.lights, -20.0);
   const auto t0 = std::chrono::steady_clock::now();
   io::ExrWriteOptions w;
@@ -135,20 +143,34 @@ int Generate(const Args& a) {
     r << std::cos(yaw), 0, -std::sin(yaw), 0, 1, 0, std::sin(yaw), 0, std::cos(yaw);
     std::vector<Eigen::Vector3d> cdirs;
     for (const auto& d : dirs) cdirs.push_back(r * d);
-    for (int i = 0; i < a.lights; ++i) {
-      cv::Mat f = RenderFrame(a.size, cdirs[i], 2.0, io::DeriveSeed(1, c, i), false, cdirs);
-      if (auto st = io::WriteExr(fmt::format("{}/olat_{:03d}.exr", cam, i), f, w); !st.ok()) {
+    const std::string cam0 = fmt::format("{}/cam00", a.dir);
+    auto make = [&](const std::string& name, const std::function<cv::Mat()>& render) -> bool {
+      const std::string path = cam + "/" + name;
+      if (fs::exists(path)) return true;
+      if (c > 0) {
+        std::error_code ec;
+        fs::create_hard_link(cam0 + "/" + name, path, ec);
+        if (!ec) return true;
+      }
+      if (auto st = io::WriteExr(path, render(), w); !st.ok()) {
         fmt::print(stderr, "{}\n", st.message());
+        return false;
+      }
+      return true;
+    };
+    for (int i = 0; i < a.lights; ++i) {
+      if (!make(fmt::format("olat_{:03d}.exr", i),
+                [&] { return RenderFrame(a.size, cdirs[i], 2.0, io::DeriveSeed(1, c, i), false, cdirs); }))
         return 2;
-      }
-      if (i % 16 == 15) {
-        cv::Mat t = RenderFrame(a.size, cdirs[i], 2.0 / a.lights, io::DeriveSeed(2, c, i), true, cdirs);
-        (void)io::WriteExr(fmt::format("{}/track_{:03d}.exr", cam, i), t, w);
-      }
+      if (i % 16 == 15 && !make(fmt::format("track_{:03d}.exr", i), [&] {
+            return RenderFrame(a.size, cdirs[i], 2.0 / a.lights, io::DeriveSeed(2, c, i), true, cdirs);
+          }))
+        return 2;
       fmt::print(stderr, "\rgenerating camera {} frame {}/{}", c, i + 1, a.lights);
     }
-    cv::Mat dark = RenderFrame(a.size, Eigen::Vector3d::Zero(), 0.0, io::DeriveSeed(3, c), false, cdirs);
-    (void)io::WriteExr(cam + "/dark.exr", dark, w);
+    if (!make("dark.exr",
+              [&] { return RenderFrame(a.size, Eigen::Vector3d::Zero(), 0.0, io::DeriveSeed(3, c), false, cdirs); }))
+      return 2;
     cv::Mat mask(a.size, a.size, CV_8UC1, cv::Scalar(0));
     cv::circle(mask, cv::Point(a.size / 2, a.size / 2), static_cast<int>(0.35 * a.size) - 2, cv::Scalar(255), -1);
     cv::imwrite(cam + "/mask.png", mask);
@@ -222,14 +244,22 @@ int main(int argc, char** argv) {
   Args a;
   for (int i = 1; i + 1 < argc; i += 2) {
     const std::string k = argv[i], v = argv[i + 1];
-    if (k == "--size") a.size = std::stoi(v);
-    else if (k == "--lights") a.lights = std::stoi(v);
-    else if (k == "--small-lights") a.small_lights = std::stoi(v);
-    else if (k == "--cameras") a.cameras = std::stoi(v);
-    else if (k == "--threads") a.threads = std::stoi(v);
-    else if (k == "--dir") a.dir = v;
-    else if (k == "--run") a.run = v;
-    else if (k == "--session") a.session = v;
+    if (k == "--size")
+      a.size = std::stoi(v);
+    else if (k == "--lights")
+      a.lights = std::stoi(v);
+    else if (k == "--small-lights")
+      a.small_lights = std::stoi(v);
+    else if (k == "--cameras")
+      a.cameras = std::stoi(v);
+    else if (k == "--threads")
+      a.threads = std::stoi(v);
+    else if (k == "--dir")
+      a.dir = v;
+    else if (k == "--run")
+      a.run = v;
+    else if (k == "--session")
+      a.session = v;
     else {
       fmt::print(stderr, "unknown option {}\n", k);
       return 2;
@@ -252,7 +282,8 @@ int main(int argc, char** argv) {
     keep_min(&check_small, Spawn(argv[0], a, "check", a.dir + "/session_small.json"));
   }
   fmt::print("{:<28} {:>9} {:>14}\n", "run (best of 2)", "seconds", "peak RSS MiB");
-  fmt::print("{:<28} {:>9.2f} {:>14.0f}\n", fmt::format("decode, {} lights", a.lights), decode_big.seconds, decode_big.rss);
+  fmt::print("{:<28} {:>9.2f} {:>14.0f}\n", fmt::format("decode, {} lights", a.lights), decode_big.seconds,
+             decode_big.rss);
   fmt::print("{:<28} {:>9.2f} {:>14.0f}  verdict {}\n", fmt::format("check,  {} lights", a.lights), check_big.seconds,
              check_big.rss, check_big.verdict);
   fmt::print("{:<28} {:>9.2f} {:>14.0f}\n", fmt::format("decode, {} lights", a.small_lights), decode_small.seconds,
@@ -262,6 +293,7 @@ int main(int argc, char** argv) {
   fmt::print("check / decode time: {:.2f} ({} lights), {:.2f} ({} lights); target <= 1.3\n",
              check_big.seconds / decode_big.seconds, a.lights, check_small.seconds / decode_small.seconds,
              a.small_lights);
-  fmt::print("check peak RSS {} lights / {} lights: {:.2f}\n", a.lights, a.small_lights, check_big.rss / check_small.rss);
+  fmt::print("check peak RSS {} lights / {} lights: {:.2f}\n", a.lights, a.small_lights,
+             check_big.rss / check_small.rss);
   return 0;
 }

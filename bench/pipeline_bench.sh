@@ -13,6 +13,8 @@ SIZE=${2:-512}
 LIGHTS=${3:-156}
 THREADS=${4:-2}
 WORK=${5:-/tmp/lumenrig-pipeline-bench}
+BUDGET=${BUDGET:-512M}   # below the stack size, so memory is set by the budget
+METHOD=${METHOD:-robust}
 LR="$BUILD/cli/lumenrig"
 PY=/usr/bin/python3
 HERE=$(cd "$(dirname "$0")" && pwd)
@@ -43,12 +45,12 @@ session() {  # session LIGHTS SIZE -> path (simulated once, cached)
 }
 
 S=$(session "$LIGHTS" "$SIZE")
-echo "session: $S (2 cameras x $LIGHTS lights, ${SIZE}x${SIZE}, threads $THREADS)"
+echo "session: $S (2 cameras x $LIGHTS lights, ${SIZE}x${SIZE}, threads $THREADS, budget $BUDGET, normals $METHOD)"
 
 read -r dec_s dec_rss < <(measure "$LR" info "$S" --verify --threads "$THREADS")
 rm -rf "$WORK/out"
-read -r run_s run_rss < <(measure "$LR" run "$S" --out "$WORK/out" --stages check,normals,matte,assemble \
-  --threads "$THREADS" --mem-budget 2G)
+read -r run_s run_rss < <(measure "$LR" run "$S" --out "$WORK/out" --stages check,normals,matte,assemble --normals-method "$METHOD" \
+  --threads "$THREADS" --mem-budget "$BUDGET")
 rm -f "$WORK/ref.h5"
 read -r ref_s ref_rss < <(measure "$PY" "$HERE/reference/lab_pipeline.py" "$S" "$WORK/ref.h5")
 echo
@@ -74,8 +76,8 @@ for spec in "$((LIGHTS / 4)) $SIZE" "$((LIGHTS / 2)) $SIZE" "$LIGHTS $SIZE" "$LI
   set -- $spec
   s=$(session "$1" "$2")
   rm -rf "$WORK/out_g"
-  read -r t r < <(measure "$LR" run "$s" --out "$WORK/out_g" --stages check,normals,matte,assemble \
-    --threads "$THREADS" --mem-budget 2G)
+  read -r t r < <(measure "$LR" run "$s" --out "$WORK/out_g" --stages check,normals,matte,assemble --normals-method "$METHOD" \
+    --threads "$THREADS" --mem-budget "$BUDGET")
   echo "| $1 | ${2}x${2} | $(($1 * $2 * $2)) | $t | $r |"
   rows+=("$(($1 * $2 * $2)) $t")
 done

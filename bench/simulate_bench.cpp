@@ -6,10 +6,10 @@
 // frames + 10 tracking + 8 extras as half EXR, truth maps; EXR encoding and
 // atomic temp+fsync+rename included). Frames/s in the "frames/s" counter;
 // peak RSS of the process in "peak_rss_MiB".
-#include <cstdlib>
-#include <filesystem>
 #include <sys/resource.h>
 #include <unistd.h>
+#include <cstdlib>
+#include <filesystem>
 
 #include <benchmark/benchmark.h>
 

@@ -5,9 +5,9 @@
 #include <fstream>
 #include <vector>
 
-#include <nlohmann/json.hpp>
 #include <sys/stat.h>
 #include <xxhash.h>
+#include <nlohmann/json.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
 

@@ -8,16 +8,10 @@
 #include <fmt/format.h>
 #include <hdf5.h>
 
+#include "hdf5_common.h"
+
 namespace lumenrig::io {
 namespace {
-
-void Silence() {
-  static std::once_flag once;
-  std::call_once(once, [] {
-    H5open();
-    H5Eset_auto2(H5E_DEFAULT, nullptr, nullptr);
-  });
-}
 
 // Closes an HDF5 id with its matching close function at scope exit.
 struct Id {
@@ -61,7 +55,7 @@ H5Reader::~H5Reader() {
 }
 
 Expected<std::unique_ptr<H5Reader>> H5Reader::Open(const std::string& path) {
-  Silence();
+  internal::SilenceHdf5();
   std::error_code ec;
   if (!std::filesystem::exists(path, ec)) return Status::BadInput(fmt::format("{}: file not found", path));
   if (H5Fis_hdf5(path.c_str()) <= 0) return Status::BadInput(fmt::format("{}: not an HDF5 file", path));

@@ -2,6 +2,8 @@
 // gzip + shuffle, IEEE half floats, attributes, temp-then-rename finalisation.
 #include "lumenrig/capture_io/hdf5_writer.h"
 
+#include "hdf5_common.h"
+
 #include <fcntl.h>
 #include <unistd.h>
 
@@ -20,16 +22,6 @@ namespace fs = std::filesystem;
 
 namespace lumenrig::io {
 namespace {
-
-// HDF5 prints its error stack to stderr by default; lumenrig turns errors
-// into one-line Status messages instead.
-void SilenceHdf5() {
-  static std::once_flag once;
-  std::call_once(once, [] {
-    H5open();
-    H5Eset_auto2(H5E_DEFAULT, nullptr, nullptr);
-  });
-}
 
 herr_t CollectError(unsigned n, const H5E_error2_t* err, void* client) {
   auto* parts = static_cast<std::vector<std::string>*>(client);
@@ -293,7 +285,7 @@ std::string H5Writer::TempPathFor(const std::string& final_path) {
 }
 
 Expected<std::unique_ptr<H5Writer>> H5Writer::Create(const std::string& final_path, bool overwrite) {
-  SilenceHdf5();
+  internal::SilenceHdf5();
   LUMENRIG_RETURN_IF_ERROR(CheckOutputPath(final_path, overwrite));
   const fs::path parent = fs::path(final_path).parent_path();
   std::error_code ec;
@@ -312,7 +304,7 @@ Expected<std::unique_ptr<H5Writer>> H5Writer::Create(const std::string& final_pa
 }
 
 Expected<std::unique_ptr<H5Writer>> H5Writer::Resume(const std::string& final_path, bool overwrite) {
-  SilenceHdf5();
+  internal::SilenceHdf5();
   LUMENRIG_RETURN_IF_ERROR(CheckOutputPath(final_path, overwrite));
   std::unique_ptr<H5Writer> w(new H5Writer());
   w->final_path_ = final_path;
@@ -624,5 +616,29 @@ Status H5Writer::Finalize() {
     return Status::BadInput(fmt::format("{}: cannot rename {} into place: {}", final_path_, temp_path_, ec.message()));
   return Status::Ok();
 }
+
+namespace internal {
+// HDF5 prints its error stack to stderr by default; lumenrig turns errors
+// into one-line Status messages instead.
+// The error-printing switch is per thread in thread-safe HDF5 builds (as
+// Debian's is), and stages call HDF5 from TBB worker threads, so every
+// thread silences itself once. The library is not closed from an atexit
+// handler (H5dont_atexit): files are closed explicitly, and closing at exit
+// while worker threads hold error stacks makes HDF5 print "infinite loop
+// closing library".
+void SilenceHdf5() {
+  static std::once_flag once;
+  std::call_once(once, [] {
+    H5dont_atexit();
+    H5open();
+  });
+  thread_local bool silenced = false;
+  if (!silenced) {
+    H5Eset_auto2(H5E_DEFAULT, nullptr, nullptr);
+    silenced = true;
+  }
+}
+
+}  // namespace internal
 
 }  // namespace lumenrig::io

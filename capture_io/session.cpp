@@ -80,7 +80,8 @@ Status ReadVector3(const JsonContext& ctx, const json& v, const std::string& at,
     return ctx.Error(at, fmt::format("expected an array of 3 numbers, found {}",
                                      v.is_array() ? fmt::format("{} elements", v.size()) : TypeName(v)));
   for (int i = 0; i < 3; ++i) {
-    LUMENRIG_RETURN_IF_ERROR(ReadFiniteNumber(ctx, v[static_cast<size_t>(i)], fmt::format("{}[{}]", at, i), &(*out)(i)));
+    LUMENRIG_RETURN_IF_ERROR(
+        ReadFiniteNumber(ctx, v[static_cast<size_t>(i)], fmt::format("{}[{}]", at, i), &(*out)(i)));
   }
   return Status::Ok();
 }
@@ -104,11 +105,12 @@ Status CheckFormat(const JsonContext& ctx, const json& j, const char* expected) 
 
 /// Resolves a path written in the session relative to `base_dir`, refusing
 /// absolute paths and paths that climb out of the folder.
-Status ResolveInside(const JsonContext& ctx, const std::string& base_dir, const std::string& rel,
-                     const std::string& at, bool require_exists, std::string* out) {
+Status ResolveInside(const JsonContext& ctx, const std::string& base_dir, const std::string& rel, const std::string& at,
+                     bool require_exists, std::string* out) {
   if (rel.empty()) return ctx.Error(at, "empty path");
   const fs::path p(rel);
-  if (p.is_absolute()) return ctx.Error(at, fmt::format("path \"{}\" is absolute; paths must be relative to the session folder", rel));
+  if (p.is_absolute())
+    return ctx.Error(at, fmt::format("path \"{}\" is absolute; paths must be relative to the session folder", rel));
   const fs::path normal = p.lexically_normal();
   if (!normal.empty() && *normal.begin() == "..")
     return ctx.Error(at, fmt::format("path \"{}\" escapes the session folder", rel));
@@ -124,8 +126,7 @@ Status ParseLight(const JsonContext& ctx, const json& jl, const std::string& at,
   LUMENRIG_RETURN_IF_ERROR(ReadInt(ctx, jl, "id", at, &light->id));
   const bool has_dir = jl.contains("direction");
   const bool has_pos = jl.contains("position");
-  if (has_dir == has_pos)
-    return ctx.Error(at, "needs exactly one of \"direction\" or \"position\"");
+  if (has_dir == has_pos) return ctx.Error(at, "needs exactly one of \"direction\" or \"position\"");
   if (has_dir) {
     Eigen::Vector3d d;
     LUMENRIG_RETURN_IF_ERROR(ReadVector3(ctx, jl.at("direction"), at + ".direction", &d));
@@ -133,7 +134,8 @@ Status ParseLight(const JsonContext& ctx, const json& jl, const std::string& at,
     if (n < 1e-9) return ctx.Error(at + ".direction", "zero vector");
     // Tolerance for unit length: 1e-3 relative (common practice for
     // directions stored with ~4-6 decimals).
-    if (std::abs(n - 1.0) > 1e-3) return ctx.Error(at + ".direction", fmt::format("not a unit vector (length {:.6f})", n));
+    if (std::abs(n - 1.0) > 1e-3)
+      return ctx.Error(at + ".direction", fmt::format("not a unit vector (length {:.6f})", n));
     light->direction = d / n;
   } else {
     Eigen::Vector3d p;
@@ -145,7 +147,8 @@ Status ParseLight(const JsonContext& ctx, const json& jl, const std::string& at,
   LUMENRIG_RETURN_IF_ERROR(ReadVector3(ctx, jl.at("intensity"), at + ".intensity", &intensity));
   for (int c = 0; c < 3; ++c) {
     if (intensity(c) < 0) return ctx.Error(fmt::format("{}.intensity[{}]", at, c), "negative intensity");
-    if (intensity(c) == 0) return ctx.Error(fmt::format("{}.intensity[{}]", at, c), "zero intensity (frames are divided by it)");
+    if (intensity(c) == 0)
+      return ctx.Error(fmt::format("{}.intensity[{}]", at, c), "zero intensity (frames are divided by it)");
   }
   light->intensity = intensity;
   if (jl.contains("solid_angle_sr")) {
@@ -299,14 +302,16 @@ Expected<Session> LoadSession(const std::string& session_path_or_dir, const Load
     Camera cam;
     LUMENRIG_RETURN_IF_ERROR(RequireString(ctx, jc, "id", at, true, &cam.id));
     if (cam.id.empty()) return ctx.Error(at + ".id", "empty camera id");
-    if (!camera_ids.insert(cam.id).second) return ctx.Error(at + ".id", fmt::format("duplicate camera id \"{}\"", cam.id));
+    if (!camera_ids.insert(cam.id).second)
+      return ctx.Error(at + ".id", fmt::format("duplicate camera id \"{}\"", cam.id));
     if (jc.contains("intrinsics")) {
       Intrinsics k;
       LUMENRIG_RETURN_IF_ERROR(ParseIntrinsics(ctx, jc.at("intrinsics"), at + ".intrinsics", &k));
       cam.intrinsics = k;
     }
     if (jc.contains("camera_from_rig")) {
-      LUMENRIG_RETURN_IF_ERROR(ParseTransform(ctx, jc.at("camera_from_rig"), at + ".camera_from_rig", &cam.camera_from_rig));
+      LUMENRIG_RETURN_IF_ERROR(
+          ParseTransform(ctx, jc.at("camera_from_rig"), at + ".camera_from_rig", &cam.camera_from_rig));
       cam.has_camera_from_rig = true;
     }
     // OLAT frames.
@@ -334,8 +339,11 @@ Expected<Session> LoadSession(const std::string& session_path_or_dir, const Load
     struct Single {
       const char* key;
       std::string* dst;
-    } singles[] = {{"dark", &cam.dark}, {"clean_plate", &cam.clean_plate}, {"backlit", &cam.backlit},
-                   {"lit", &cam.lit},   {"mask", &cam.mask}};
+    } singles[] = {{"dark", &cam.dark},
+                   {"clean_plate", &cam.clean_plate},
+                   {"backlit", &cam.backlit},
+                   {"lit", &cam.lit},
+                   {"mask", &cam.mask}};
     for (const auto& single : singles) {
       std::string rel;
       LUMENRIG_RETURN_IF_ERROR(RequireString(ctx, jc, single.key, at, false, &rel));
@@ -362,7 +370,8 @@ Expected<Session> LoadSession(const std::string& session_path_or_dir, const Load
     // Matte pairs (triangulation matting).
     if (jc.contains("matte_pairs")) {
       const json& mp = jc.at("matte_pairs");
-      if (!mp.is_array()) return ctx.Error(at + ".matte_pairs", fmt::format("expected an array, found {}", TypeName(mp)));
+      if (!mp.is_array())
+        return ctx.Error(at + ".matte_pairs", fmt::format("expected an array, found {}", TypeName(mp)));
       for (size_t k = 0; k < mp.size(); ++k) {
         const std::string pat = fmt::format("{}.matte_pairs[{}]", at, k);
         if (!mp[k].is_object()) return ctx.Error(pat, fmt::format("expected an object, found {}", TypeName(mp[k])));
@@ -418,12 +427,14 @@ json SessionToJson(const Session& s) {
     json jc;
     jc["id"] = c.id;
     if (c.intrinsics) {
-      jc["intrinsics"] = {{"fx", c.intrinsics->fx}, {"fy", c.intrinsics->fy}, {"cx", c.intrinsics->cx}, {"cy", c.intrinsics->cy}};
+      jc["intrinsics"] = {
+          {"fx", c.intrinsics->fx}, {"fy", c.intrinsics->fy}, {"cx", c.intrinsics->cx}, {"cy", c.intrinsics->cy}};
     }
     if (c.has_camera_from_rig) {
       json m = json::array();
       for (int r = 0; r < 4; ++r)
-        m.push_back(json::array({c.camera_from_rig(r, 0), c.camera_from_rig(r, 1), c.camera_from_rig(r, 2), c.camera_from_rig(r, 3)}));
+        m.push_back(json::array(
+            {c.camera_from_rig(r, 0), c.camera_from_rig(r, 1), c.camera_from_rig(r, 2), c.camera_from_rig(r, 3)}));
       jc["camera_from_rig"] = m;
     }
     json olat = json::array();
@@ -435,7 +446,8 @@ json SessionToJson(const Session& s) {
     if (!c.lit.empty()) jc["lit"] = RelativeTo(s.dir, c.lit);
     if (!c.tracking.empty()) {
       json tr = json::array();
-      for (const auto& t : c.tracking) tr.push_back({{"after_light", t.after_light}, {"path", RelativeTo(s.dir, t.path)}});
+      for (const auto& t : c.tracking)
+        tr.push_back({{"after_light", t.after_light}, {"path", RelativeTo(s.dir, t.path)}});
       jc["tracking"] = tr;
     }
     if (!c.mask.empty()) jc["mask"] = RelativeTo(s.dir, c.mask);

@@ -1,9 +1,10 @@
 // `lumenrig check SESSION`: the technician's verdict on a take.
+#include <unistd.h>
 #include <chrono>
 #include <cmath>
 #include <cstdio>
+#include <filesystem>
 #include <fstream>
-#include <unistd.h>
 
 #include "command.h"
 #include "lumenrig/capture_io/atomic_file.h"
@@ -63,8 +64,12 @@ int Run(const CheckArgs& args) {
 
   // Refuse to clobber outputs before any work (no partial output on bad input).
   const std::string html_path = args.report_dir.empty() ? "" : args.report_dir + "/check_report.html";
-  if (!args.json_path.empty())
+  if (!args.json_path.empty()) {
     if (auto st = io::CheckOutputPath(args.json_path, args.force); !st.ok()) return ReportError("check", st);
+    const std::string parent = std::filesystem::path(args.json_path).parent_path().string();
+    if (!parent.empty())
+      if (auto st = io::EnsureDirectory(parent); !st.ok()) return ReportError("check", st);
+  }
   if (!html_path.empty())
     if (auto st = io::CheckOutputPath(html_path, args.force); !st.ok()) return ReportError("check", st);
 
@@ -90,7 +95,8 @@ int Run(const CheckArgs& args) {
 
   const bool colour = UseColor() && isatty(fileno(stdout));
   auto paint = [&](solvers::Verdict v) {
-    return colour ? fmt::format("{}{}\033[0m", Colour(v), solvers::VerdictName(v)) : std::string(solvers::VerdictName(v));
+    return colour ? fmt::format("{}{}\033[0m", Colour(v), solvers::VerdictName(v))
+                  : std::string(solvers::VerdictName(v));
   };
   fmt::print("lumenrig check: session {} ({} cameras, {} lights)\n", session->Id(), session->cameras.size(),
              session->rig.lights.size());
@@ -108,7 +114,8 @@ int Run(const CheckArgs& args) {
   }
 
   if (!args.json_path.empty())
-    if (auto st = solvers::WriteCheckJson(result, args.json_path, args.force); !st.ok()) return ReportError("check", st);
+    if (auto st = solvers::WriteCheckJson(result, args.json_path, args.force); !st.ok())
+      return ReportError("check", st);
   if (!args.report_dir.empty()) {
     std::string written;
     if (auto st = solvers::WriteCheckReport(result, args.report_dir, args.force, &written); !st.ok())
@@ -120,9 +127,10 @@ int Run(const CheckArgs& args) {
     fails += line.verdict == solvers::Verdict::kFail;
     warns += line.verdict == solvers::Verdict::kWarn;
   }
-  const std::string detail = result.verdict == solvers::Verdict::kFail
-                                 ? fmt::format("{} check(s) failed, {} warning(s): recapture before the subject leaves", fails, warns)
-                                 : fmt::format("session usable, {} warning(s)", warns);
+  const std::string detail =
+      result.verdict == solvers::Verdict::kFail
+          ? fmt::format("{} check(s) failed, {} warning(s): recapture before the subject leaves", fails, warns)
+          : fmt::format("session usable, {} warning(s)", warns);
   fmt::print("verdict: {}  {}\n", paint(result.verdict), detail);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
   fmt::print("lumenrig check: {}\n", TimeAndMemoryLine(wall));
@@ -132,9 +140,11 @@ int Run(const CheckArgs& args) {
 std::function<int()> Setup(CLI::App* sub) {
   auto args = std::make_shared<CheckArgs>();
   sub->add_option("session", args->session, "Session folder or its session.json");
-  sub->add_option("--json", args->json_path, "Write every check, value, threshold, verdict and offending frame as JSON");
+  sub->add_option("--json", args->json_path,
+                  "Write every check, value, threshold, verdict and offending frame as JSON");
   sub->add_option("--report", args->report_dir, "Write a self-contained HTML report DIR/check_report.html");
-  sub->add_option("--threshold", args->thresholds, "Override one threshold, KEY=VALUE (repeatable; see --list-thresholds)");
+  sub->add_option("--threshold", args->thresholds,
+                  "Override one threshold, KEY=VALUE (repeatable; see --list-thresholds)");
   sub->add_option("--thresholds", args->thresholds_file, "JSON file of {\"KEY\": VALUE} threshold overrides");
   sub->add_flag("--list-thresholds", args->list, "Print every threshold with its default, unit and source, then exit");
   sub->add_option("--threads", args->threads, "Worker threads (0 = all cores)")->check(CLI::NonNegativeNumber);
@@ -145,7 +155,8 @@ std::function<int()> Setup(CLI::App* sub) {
   return [args] { return Run(*args); };
 }
 
-const CommandRegistrar kRegistrar({"check", "Check a captured session: completeness, exposure, lights, stability, "
+const CommandRegistrar kRegistrar({"check",
+                                   "Check a captured session: completeness, exposure, lights, stability, "
                                    "calibration, matting prerequisites (PASS/WARN/FAIL, HTML report)",
                                    10, Setup});
 

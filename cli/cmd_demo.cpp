@@ -42,8 +42,8 @@ io::Status PrepareFolder(const std::string& out) {
       return io::Status::BadInput(fmt::format("{}: exists and is not a folder; choose another --out", out));
     if (!fs::is_empty(out, ec)) {
       if (!fs::exists(fs::path(out) / kDemoMarker, ec))
-        return io::Status::BadInput(
-            fmt::format("{}: folder exists and was not made by `lumenrig demo`; refusing to touch it (choose another --out)", out));
+        return io::Status::BadInput(fmt::format(
+            "{}: folder exists and was not made by `lumenrig demo`; refusing to touch it (choose another --out)", out));
       fmt::print("demo: replacing the previous demo output in {}\n", out);
       fs::remove_all(out, ec);
       if (ec) return io::Status::BadInput(fmt::format("{}: cannot remove previous demo output: {}", out, ec.message()));
@@ -69,7 +69,8 @@ io::Status WriteComposite(const std::string& cam_dir, const std::string& sky_pat
 
 int RunDemo(const DemoArgs& a) {
   const auto t0 = std::chrono::steady_clock::now();
-  tbb::global_control cap(tbb::global_control::max_allowed_parallelism, static_cast<size_t>(io::ResolveThreads(a.threads)));
+  tbb::global_control cap(tbb::global_control::max_allowed_parallelism,
+                          static_cast<size_t>(io::ResolveThreads(a.threads)));
   io::Status s = PrepareFolder(a.out);
   if (!s.ok()) return ReportError("demo", s);
   const std::string session_dir = (fs::path(a.out) / "session").string();
@@ -150,19 +151,18 @@ int RunDemo(const DemoArgs& a) {
   return 0;
 }
 
-CommandRegistrar reg({"demo",
-                      "Simulate the built-in demo take and run every stage on it (check, normals, matte, relit pairs)",
-                      5, [](CLI::App* sub) -> std::function<int()> {
-                        auto a = std::make_shared<DemoArgs>();
-                        sub->add_option("--out", a->out, "Demo folder (an earlier demo folder is replaced)")
-                            ->capture_default_str();
-                        sub->add_option("--threads", a->threads, "Worker threads (0 = all cores)")->capture_default_str();
-                        sub->add_option("--lights", a->lights, "Lights in the simulated dome")->capture_default_str();
-                        sub->add_option("--cameras", a->cameras, "Simulated cameras")->capture_default_str();
-                        sub->add_option("--size", a->size, "Frame size WIDTHxHEIGHT")->capture_default_str();
-                        sub->add_option("--pairs", a->pairs, "Training pairs to write")->capture_default_str();
-                        return [a] { return RunDemo(*a); };
-                      }});
+CommandRegistrar reg(
+    {"demo", "Simulate the built-in demo take and run every stage on it (check, normals, matte, relit pairs)", 5,
+     [](CLI::App* sub) -> std::function<int()> {
+       auto a = std::make_shared<DemoArgs>();
+       sub->add_option("--out", a->out, "Demo folder (an earlier demo folder is replaced)")->capture_default_str();
+       sub->add_option("--threads", a->threads, "Worker threads (0 = all cores)")->capture_default_str();
+       sub->add_option("--lights", a->lights, "Lights in the simulated dome")->capture_default_str();
+       sub->add_option("--cameras", a->cameras, "Simulated cameras")->capture_default_str();
+       sub->add_option("--size", a->size, "Frame size WIDTHxHEIGHT")->capture_default_str();
+       sub->add_option("--pairs", a->pairs, "Training pairs to write")->capture_default_str();
+       return [a] { return RunDemo(*a); };
+     }});
 
 }  // namespace
 }  // namespace lumenrig::cli

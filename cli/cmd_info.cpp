@@ -11,8 +11,8 @@
 #include <nlohmann/json.hpp>
 
 #include "command.h"
-#include "lumenrig/capture_io/parallel.h"
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/parallel.h"
 #include "lumenrig/capture_io/session.h"
 
 namespace fs = std::filesystem;
@@ -77,10 +77,9 @@ io::Status ProbeCamera(const io::Camera& cam, bool verify, int threads, CameraRe
     // Decode every frame once, frames in parallel; report the first failure
     // in list order so the message does not depend on scheduling.
     std::vector<io::Status> results(refs.size());
-    io::ParallelFor(0, static_cast<int64_t>(refs.size()), 1, threads,
-                    [&](int64_t b, int64_t e) {
-                      for (int64_t i = b; i < e; ++i) results[static_cast<size_t>(i)] = VerifyPixels(refs[static_cast<size_t>(i)].path);
-                    });
+    io::ParallelFor(0, static_cast<int64_t>(refs.size()), 1, threads, [&](int64_t b, int64_t e) {
+      for (int64_t i = b; i < e; ++i) results[static_cast<size_t>(i)] = VerifyPixels(refs[static_cast<size_t>(i)].path);
+    });
     for (const auto& st : results) LUMENRIG_RETURN_IF_ERROR(st);
   }
   for (const FrameRef& ref : refs) {
@@ -202,7 +201,8 @@ void PrintText(const io::Session& s, const std::vector<CameraReport>& cams) {
 }
 
 std::string RunStats(std::chrono::steady_clock::time_point start) {
-  return "info: done in " + TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count());
+  return "info: done in " +
+         TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count());
 }
 
 int RunInfo(const std::string& session_path, bool as_json, bool verify, int threads) {

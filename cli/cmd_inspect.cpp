@@ -82,9 +82,11 @@ int Run(const InspectArgs& a) {
     if (!sheet.ok()) return ReportError(cmd, sheet.status());
     io::Status st = io::WritePng(a.preview, *sheet, a.force);
     if (!st.ok()) return ReportError(cmd, st);
-    fmt::print("preview: {} (rows = samples; columns = {})\n", a.preview, fmt::join(synth::kPairsPreviewColumns, " | "));
+    fmt::print("preview: {} (rows = samples; columns = {})\n", a.preview,
+               fmt::join(synth::kPairsPreviewColumns, " | "));
   }
-  fmt::print("inspect: {}\n", TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
+  fmt::print("inspect: {}\n",
+             TimeAndMemoryLine(std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count()));
   return 0;
 }
 

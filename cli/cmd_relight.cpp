@@ -4,10 +4,10 @@
 #include <fmt/format.h>
 
 #include "command.h"
-#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
+#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/synth/envmap.h"
 #include "lumenrig/synth/relight.h"
 

@@ -88,7 +88,8 @@ class ProgressDisplay {
  private:
   using Clock = std::chrono::steady_clock;
   static std::string Label(const synth::UnitPlan& u) {
-    return fmt::format("{} {}{}", u.session_id, u.camera_id.empty() ? "" : u.camera_id + " ", synth::StageName(u.stage));
+    return fmt::format("{} {}{}", u.session_id, u.camera_id.empty() ? "" : u.camera_id + " ",
+                       synth::StageName(u.stage));
   }
   void Draw() {
     if (!tty_) return;
@@ -210,17 +211,21 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
       return 0;
     }
     int to_run = 0;
-    for (const auto& u : plan.units) to_run += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
+    for (const auto& u : plan.units)
+      to_run += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
     ProgressDisplay display(to_run, StderrIsTerminal());
     synth::RunEvents events;
     events.unit_started = [&](const synth::UnitPlan& u) { display.Started(u); };
     events.unit_progress = [&](const synth::UnitPlan& u, double f) { display.Progress(u, f); };
-    events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, double w) { display.Finished(u, st, w); };
+    events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, double w) {
+      display.Finished(u, st, w);
+    };
     synth::RunReport report;
     s = synth::ExecuteRun(o, &plan, events, &report);
     display.Close();
     if (args->stats) {
-      fmt::print("{:<9} {:>5} {:>7} {:>10} {:>10} {:>12}\n", "stage", "ran", "skipped", "wall s", "cpu s", "peak RSS MiB");
+      fmt::print("{:<9} {:>5} {:>7} {:>10} {:>10} {:>12}\n", "stage", "ran", "skipped", "wall s", "cpu s",
+                 "peak RSS MiB");
       for (const auto& st : report.stages)
         fmt::print("{:<9} {:>5} {:>7} {:>10.2f} {:>10.2f} {:>12.0f}\n", synth::StageName(st.stage), st.units_run,
                    st.units_skipped, st.wall_s, st.cpu_s, static_cast<double>(st.peak_rss_bytes) / (1 << 20));

@@ -1,13 +1,13 @@
 // `lumenrig simulate`: writes a simulated OLAT session of the Kestrel Hollow
 // Studio scene (plaster bust kh-bust-03 and a grey reference sphere) with
 // ground truth and optional injected faults.
+#include <sys/resource.h>
+#include <unistd.h>
 #include <chrono>
 #include <cstdio>
 #include <filesystem>
 #include <memory>
 #include <regex>
-#include <sys/resource.h>
-#include <unistd.h>
 
 #include <fmt/format.h>
 
@@ -65,7 +65,7 @@ io::Status BuildOptions(const SimulateArgs& a, synth::SimOptions* o) {
   o->layout = a.layout == "two-ring" ? synth::LightLayout::kTwoRing : synth::LightLayout::kFibonacciDome;
   o->min_elevation_deg = a.min_elevation_deg;
   o->noise = !a.no_noise;
-  o->specular = a.no_specular ? synth::SpecularModel::kNone
+  o->specular = a.no_specular         ? synth::SpecularModel::kNone
                 : a.specular == "ggx" ? synth::SpecularModel::kGgx
                                       : synth::SpecularModel::kBlinnPhong;
   o->shadows = !a.no_shadows;
@@ -115,8 +115,10 @@ std::function<int()> Setup(CLI::App* sub) {
   sub->add_option("--cameras", a->cameras, "Number of cameras (cam00 in front, others at +-25 deg steps of yaw)")
       ->capture_default_str();
   sub->add_option("--seed", a->seed, "Random seed (noise, per-light intensity variation)")->capture_default_str();
-  sub->add_flag("--near-field", a->near_field, "Lights get positions (metres, on a 1.8 m sphere) instead of directions");
-  sub->add_option("--layout", a->layout, "Light layout: 'dome' (Fibonacci dome) or 'two-ring' (15 and 50 deg elevation)")
+  sub->add_flag("--near-field", a->near_field,
+                "Lights get positions (metres, on a 1.8 m sphere) instead of directions");
+  sub->add_option("--layout", a->layout,
+                  "Light layout: 'dome' (Fibonacci dome) or 'two-ring' (15 and 50 deg elevation)")
       ->check(CLI::IsMember({"dome", "two-ring"}))
       ->capture_default_str();
   sub->add_option("--min-elevation-deg", a->min_elevation_deg, "Lowest elevation of the Fibonacci dome, degrees")
@@ -157,7 +159,8 @@ std::function<int()> Setup(CLI::App* sub) {
       fmt::print("rig calibration: {} ({} lights)\n", a->rig_out, options.num_lights);
       return 0;
     }
-    if (a->out.empty()) return ReportError("simulate", io::Status::BadInput("--out: required (the session folder to write)"));
+    if (a->out.empty())
+      return ReportError("simulate", io::Status::BadInput("--out: required (the session folder to write)"));
     const bool tty = isatty(fileno(stderr)) != 0;
     if (tty) {
       options.progress = [](int done, int total) {
@@ -172,9 +175,11 @@ std::function<int()> Setup(CLI::App* sub) {
     fmt::print("session: {}\n", summary.session_path);
     fmt::print("truth: {}/truth (normals, albedo, alpha, depth, foreground, mask per camera; simulation.json)\n",
                std::filesystem::path(summary.session_path).parent_path().string());
-    fmt::print("simulate: {} cameras x {} lights, {}x{}, {} frames written in {:.2f} s ({:.1f} frames/s), peak RSS {:.0f} MiB\n",
-               options.num_cameras, options.num_lights, options.width, options.height, summary.frames_written, seconds,
-               summary.frames_written / seconds, PeakRssMiB());
+    fmt::print(
+        "simulate: {} cameras x {} lights, {}x{}, {} frames written in {:.2f} s ({:.1f} frames/s), peak RSS {:.0f} "
+        "MiB\n",
+        options.num_cameras, options.num_lights, options.width, options.height, summary.frames_written, seconds,
+        summary.frames_written / seconds, PeakRssMiB());
     return 0;
   };
 }

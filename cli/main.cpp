@@ -1,11 +1,11 @@
 // lumenrig command-line entry point: parses, dispatches to one registered
 // subcommand, maps errors to the exit codes of DESIGN.md.
+#include <sys/resource.h>
+#include <unistd.h>
 #include <algorithm>
 #include <cstdio>
 #include <cstdlib>
 #include <exception>
-#include <sys/resource.h>
-#include <unistd.h>
 
 #include <fmt/format.h>
 
@@ -41,15 +41,15 @@ std::string TimeAndMemoryLine(double wall_s) {
 
 int main(int argc, char** argv) {
   using lumenrig::cli::Commands;
-  CLI::App app{"lumenrig: checks one-light-at-a-time (OLAT) dome captures and turns them into\n"
-               "ground-truth maps and relit training data."};
+  CLI::App app{
+      "lumenrig: checks one-light-at-a-time (OLAT) dome captures and turns them into\n"
+      "ground-truth maps and relit training data."};
   app.set_version_flag("--version", std::string("lumenrig ") + LUMENRIG_VERSION);
   app.require_subcommand(1);
   app.fallthrough(false);
 
   auto& commands = Commands();
-  std::stable_sort(commands.begin(), commands.end(),
-                   [](const auto& a, const auto& b) { return a.order < b.order; });
+  std::stable_sort(commands.begin(), commands.end(), [](const auto& a, const auto& b) { return a.order < b.order; });
   std::vector<std::pair<CLI::App*, std::function<int()>>> runners;
   for (auto& def : commands) {
     CLI::App* sub = app.add_subcommand(def.name, def.description);

@@ -36,8 +36,8 @@ void CheckCalibration(const io::Rig& rig, const std::vector<CameraPose>& cameras
   const int n = static_cast<int>(rig.lights.size());
 
   // Unit directions.
-  CheckLine unit = MakeLine("calibration.directions", "Light directions are unit vectors", "| |d|-1 |", nan,
-                            options.unit_tolerance);
+  CheckLine unit =
+      MakeLine("calibration.directions", "Light directions are unit vectors", "| |d|-1 |", nan, options.unit_tolerance);
   double worst_unit = 0.0;
   for (const auto& l : rig.lights) {
     double err = 0.0;
@@ -52,8 +52,8 @@ void CheckCalibration(const io::Rig& rig, const std::vector<CameraPose>& cameras
       f.verdict = Verdict::kFail;
       f.lights = {l.id};
       f.value = err;
-      f.message = l.direction ? fmt::format("rig {}: light {} direction has length {} (not a unit vector)", rig.name, l.id,
-                                            Num(l.direction->norm(), 4))
+      f.message = l.direction ? fmt::format("rig {}: light {} direction has length {} (not a unit vector)", rig.name,
+                                            l.id, Num(l.direction->norm(), 4))
                               : fmt::format("rig {}: light {} sits at the rig origin (no direction)", rig.name, l.id);
       AddFinding(&unit, std::move(f));
     }
@@ -98,8 +98,7 @@ void CheckCalibration(const io::Rig& rig, const std::vector<CameraPose>& cameras
     }
   }
   dup.value = std::isfinite(closest) ? closest : 0.0;
-  dup.summary = n < 2 ? "fewer than two lights"
-                      : fmt::format("closest pair of lights {} deg apart", Num(dup.value, 2));
+  dup.summary = n < 2 ? "fewer than two lights" : fmt::format("closest pair of lights {} deg apart", Num(dup.value, 2));
   lines->push_back(std::move(dup));
 
   // Coverage of the camera-facing hemisphere (camera frame z > 0), sampled
@@ -132,21 +131,22 @@ void CheckCalibration(const io::Rig& rig, const std::vector<CameraPose>& cameras
       f.verdict = Verdict::kWarn;
       f.camera = cam.id;
       f.value = pct;
-      f.message = fmt::format("camera {}: only {}% of the camera-facing hemisphere has a light within {} deg "
-                              "(largest gap {} deg); normals facing the gaps are poorly lit",
-                              cam.id, Num(pct, 1), Num(options.coverage_radius_deg, 0), Num(largest_gap, 0));
+      f.message = fmt::format(
+          "camera {}: only {}% of the camera-facing hemisphere has a light within {} deg "
+          "(largest gap {} deg); normals facing the gaps are poorly lit",
+          cam.id, Num(pct, 1), Num(options.coverage_radius_deg, 0), Num(largest_gap, 0));
       AddFinding(&cov, std::move(f));
     }
   }
   std::string joined;
   for (size_t i = 0; i < parts.size(); ++i) joined += (i ? ", " : "") + parts[i];
-  cov.summary = fmt::format("camera-facing hemisphere within {} deg of a light: {}", Num(options.coverage_radius_deg, 0),
-                            joined);
+  cov.summary =
+      fmt::format("camera-facing hemisphere within {} deg of a light: {}", Num(options.coverage_radius_deg, 0), joined);
   lines->push_back(std::move(cov));
 
   // Condition number of the N x 3 light matrix (rotation-invariant).
-  CheckLine cond = MakeLine("calibration.condition", "Light matrix is well conditioned", "",
-                            options.condition_warn, options.condition_fail);
+  CheckLine cond = MakeLine("calibration.condition", "Light matrix is well conditioned", "", options.condition_warn,
+                            options.condition_fail);
   std::vector<Eigen::Vector3d> dirs;
   for (const auto& l : rig.lights) dirs.push_back(RigDirection(l));
   const double kappa = ConditionNumber(StackDirections(dirs));
@@ -156,12 +156,14 @@ void CheckCalibration(const io::Rig& rig, const std::vector<CameraPose>& cameras
     f.verdict = (!std::isfinite(kappa) || kappa > options.condition_fail) ? Verdict::kFail : Verdict::kWarn;
     f.value = kappa;
     f.message = std::isfinite(kappa)
-                    ? fmt::format("rig {}: condition number {} of the light matrix: photometric stereo amplifies "
-                                  "noise by up to this factor",
-                                  rig.name, Num(kappa, 1))
-                    : fmt::format("rig {}: light directions are coplanar or fewer than 3 (rank < 3): normals cannot "
-                                  "be solved",
-                                  rig.name);
+                    ? fmt::format(
+                          "rig {}: condition number {} of the light matrix: photometric stereo amplifies "
+                          "noise by up to this factor",
+                          rig.name, Num(kappa, 1))
+                    : fmt::format(
+                          "rig {}: light directions are coplanar or fewer than 3 (rank < 3): normals cannot "
+                          "be solved",
+                          rig.name);
     AddFinding(&cond, std::move(f));
   }
   cond.summary = std::isfinite(kappa) ? fmt::format("condition number {}", Num(kappa, 2))

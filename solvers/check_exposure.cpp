@@ -50,9 +50,10 @@ void CheckExposure(const io::Session& session, const CheckOptions& options, Chec
         f.lights = {s.light};
         f.frame = s.path;
         f.value = s.clipped_pct;
-        f.message = fmt::format("camera {} light {}: {}% of subject pixels clipped (over-exposed; lower the light "
-                                "or the exposure)",
-                                cam, s.light, Num(s.clipped_pct, 2));
+        f.message = fmt::format(
+            "camera {} light {}: {}% of subject pixels clipped (over-exposed; lower the light "
+            "or the exposure)",
+            cam, s.light, Num(s.clipped_pct, 2));
         AddFinding(&clip, std::move(f));
       }
     }
@@ -67,9 +68,10 @@ void CheckExposure(const io::Session& session, const CheckOptions& options, Chec
       f.verdict = peak_fs < options.underexposed_fail ? Verdict::kFail : Verdict::kWarn;
       f.camera = cam;
       f.value = peak_fs;
-      f.message = fmt::format("camera {}: the brightest OLAT frame (light {}) reaches only {}% of full scale at its "
-                              "99th percentile (under-exposed)",
-                              cam, peak_light, Num(100 * peak_fs, 1));
+      f.message = fmt::format(
+          "camera {}: the brightest OLAT frame (light {}) reaches only {}% of full scale at its "
+          "99th percentile (under-exposed)",
+          cam, peak_light, Num(100 * peak_fs, 1));
       AddFinding(&level, std::move(f));
     }
     // SNR: median over front-lit frames (mean at least a quarter of the brightest).
@@ -90,9 +92,10 @@ void CheckExposure(const io::Session& session, const CheckOptions& options, Chec
         f.verdict = Verdict::kWarn;
         f.camera = cam;
         f.value = med;
-        f.message = fmt::format("camera {}: median SNR of front-lit OLAT frames is {} dB (noisy; raise exposure or "
-                                "light output)",
-                                cam, Num(med, 1));
+        f.message = fmt::format(
+            "camera {}: median SNR of front-lit OLAT frames is {} dB (noisy; raise exposure or "
+            "light output)",
+            cam, Num(med, 1));
         AddFinding(&snr, std::move(f));
       }
     }
@@ -110,9 +113,10 @@ void CheckExposure(const io::Session& session, const CheckOptions& options, Chec
         f.camera = cam;
         f.frame = session.cameras[c].dark;
         f.value = residual;
-        f.message = fmt::format("camera {}: dark frame mean is {} of full scale after the session black_level {} "
-                                "(wrong black level or light leak); stats are corrected by it",
-                                cam, Num(residual, 5), Num(session.black_level, 5));
+        f.message = fmt::format(
+            "camera {}: dark frame mean is {} of full scale after the session black_level {} "
+            "(wrong black level or light leak); stats are corrected by it",
+            cam, Num(residual, 5), Num(session.black_level, 5));
         AddFinding(&black, std::move(f));
       }
     }
@@ -126,8 +130,8 @@ void CheckExposure(const io::Session& session, const CheckOptions& options, Chec
     level.verdict = Verdict::kSkip;
     level.summary = "no readable OLAT frame";
   } else {
-    level.summary = fmt::format("brightest OLAT frame p99 at {}% of full scale ({})", Num(100 * level.value, 1),
-                                level_where);
+    level.summary =
+        fmt::format("brightest OLAT frame p99 at {}% of full scale ({})", Num(100 * level.value, 1), level_where);
   }
   if (!std::isfinite(snr.value)) {
     snr.value = nan;

@@ -13,8 +13,7 @@
 namespace lumenrig::solvers::check_detail {
 
 /// A check line with its thresholds; value/verdict/summary filled later.
-CheckLine MakeLine(const std::string& key, const std::string& title, const std::string& unit, double warn,
-                   double fail);
+CheckLine MakeLine(const std::string& key, const std::string& title, const std::string& unit, double warn, double fail);
 /// Adds a finding, raises the line's verdict and the frame's flag.
 void AddFinding(CheckLine* line, Finding finding);
 

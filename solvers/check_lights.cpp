@@ -23,9 +23,7 @@ double AngleDeg(const Eigen::Vector3d& a, const Eigen::Vector3d& b) {
   return std::atan2(a.cross(b).norm(), a.dot(b)) * 180.0 / kPi;
 }
 
-double Lum(const Eigen::Vector3d& rgb) {
-  return io::kBt709R * rgb.x() + io::kBt709G * rgb.y() + io::kBt709B * rgb.z();
-}
+double Lum(const Eigen::Vector3d& rgb) { return io::kBt709R * rgb.x() + io::kBt709G * rgb.y() + io::kBt709B * rgb.z(); }
 
 struct CamFrames {
   std::vector<int> frame;          // index into result->frames
@@ -142,7 +140,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
       std::vector<double> sorted_own = own;
       std::nth_element(sorted_own.begin(), sorted_own.begin() + n / 2, sorted_own.end());
       const double med_own = sorted_own[n / 2];
-      struct Cand { double gain; int i, j; };
+      struct Cand {
+        double gain;
+        int i, j;
+      };
       std::vector<Cand> cands;
       for (int i = 0; i < n; ++i) {
         for (int j = i + 1; j < n; ++j) {
@@ -194,10 +195,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
           f.camera = cam.id;
           f.lights = {s.light, o.light};
           f.value = 100.0 * gain_of[i];
-          f.message = fmt::format("camera {}: frames of lights {} and {} are swapped (each is lit from the other's "
-                                  "direction, {} deg apart; exchanging them explains {}% of their residual)",
-                                  cam.id, s.light, o.light, Num(AngleDeg(cf.d[i], cf.d[partner[i]]), 0),
-                                  Num(100.0 * gain_of[i], 0));
+          f.message = fmt::format(
+              "camera {}: frames of lights {} and {} are swapped (each is lit from the other's "
+              "direction, {} deg apart; exchanging them explains {}% of their residual)",
+              cam.id, s.light, o.light, Num(AngleDeg(cf.d[i], cf.d[partner[i]]), 0), Num(100.0 * gain_of[i], 0));
           AddFinding(&slot, std::move(f));
         }
         continue;
@@ -224,9 +225,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
         f.lights = {s.light};
         f.frame = s.path;
         f.value = ratio;
-        f.message = fmt::format("camera {} light {}: frame energy is {}% of what its direction and calibrated "
-                                "intensity predict ({} light)",
-                                cam.id, s.light, Num(100 * ratio, 0), f.verdict == Verdict::kFail ? "dead" : "weak");
+        f.message = fmt::format(
+            "camera {} light {}: frame energy is {}% of what its direction and calibrated "
+            "intensity predict ({} light)",
+            cam.id, s.light, Num(100 * ratio, 0), f.verdict == Verdict::kFail ? "dead" : "weak");
         AddFinding(&weak, std::move(f));
       } else if (ratio > options.hot_warn_ratio) {
         Finding f;
@@ -235,9 +237,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
         f.lights = {s.light};
         f.frame = s.path;
         f.value = ratio;
-        f.message = fmt::format("camera {} light {}: frame energy is {}x what its direction and calibrated intensity "
-                                "predict (light too bright or wrong intensity in the rig file)",
-                                cam.id, s.light, Num(ratio, 2));
+        f.message = fmt::format(
+            "camera {} light {}: frame energy is {}x what its direction and calibrated intensity "
+            "predict (light too bright or wrong intensity in the rig file)",
+            cam.id, s.light, Num(ratio, 2));
         AddFinding(&hot, std::move(f));
       }
     }
@@ -287,9 +290,10 @@ void CheckLights(const io::Session& session, const CheckOptions& options, CheckR
         f.lights = {s.light};
         f.frame = s.path;
         f.value = dev;
-        f.message = fmt::format("camera {} light {}: {} channel {} by {}% against the other lights after calibration "
-                                "(wrong gel / LED bin or stale colour calibration)",
-                                cam.id, s.light, kNames[worst_ch], rel(worst_ch) > 0 ? "high" : "low", Num(dev, 1));
+        f.message = fmt::format(
+            "camera {} light {}: {} channel {} by {}% against the other lights after calibration "
+            "(wrong gel / LED bin or stale colour calibration)",
+            cam.id, s.light, kNames[worst_ch], rel(worst_ch) > 0 ? "high" : "low", Num(dev, 1));
         AddFinding(&colour, std::move(f));
       }
     }

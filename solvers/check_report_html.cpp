@@ -92,9 +92,10 @@ class SvgPlot {
   SvgPlot(int width, int height, double x0, double x1, double y0, double y1, const std::string& xlabel,
           const std::string& ylabel)
       : w_(width), h_(height), x0_(x0), x1_(x1 > x0 ? x1 : x0 + 1), y0_(y0), y1_(y1 > y0 ? y1 : y0 + 1) {
-    out_ << fmt::format("<svg width='{}' height='{}' viewBox='0 0 {} {}' "
-                        "class='plot'>",
-                        w_, h_, w_, h_);
+    out_ << fmt::format(
+        "<svg width='{}' height='{}' viewBox='0 0 {} {}' "
+        "class='plot'>",
+        w_, h_, w_, h_);
     out_ << fmt::format("<rect x='{}' y='{}' width='{}' height='{}' fill='#fff' stroke='#bbb'/>", kL, kT, PlotW(),
                         PlotH());
     for (int k = 0; k <= 4; ++k) {
@@ -111,9 +112,10 @@ class SvgPlot {
     }
     out_ << fmt::format("<text x='{:.1f}' y='{}' class='axis' text-anchor='middle'>{}</text>", kL + PlotW() / 2.0,
                         h_ - 4, Esc(xlabel));
-    out_ << fmt::format("<text x='12' y='{:.1f}' class='axis' text-anchor='middle' transform='rotate(-90 12 {:.1f})'>"
-                        "{}</text>",
-                        kT + PlotH() / 2.0, kT + PlotH() / 2.0, Esc(ylabel));
+    out_ << fmt::format(
+        "<text x='12' y='{:.1f}' class='axis' text-anchor='middle' transform='rotate(-90 12 {:.1f})'>"
+        "{}</text>",
+        kT + PlotH() / 2.0, kT + PlotH() / 2.0, Esc(ylabel));
   }
   double X(double x) const { return kL + (x - x0_) / (x1_ - x0_) * PlotW(); }
   double Y(double y) const { return kT + (1.0 - (std::clamp(y, y0_, y1_) - y0_) / (y1_ - y0_)) * PlotH(); }
@@ -142,7 +144,8 @@ class SvgPlot {
 std::string ThresholdText(const CheckLine& line) {
   std::string s;
   if (std::isfinite(line.warn_threshold)) s += "warn " + Num(line.warn_threshold, 3);
-  if (std::isfinite(line.fail_threshold)) s += (s.empty() ? "" : " / ") + std::string("fail ") + Num(line.fail_threshold, 3);
+  if (std::isfinite(line.fail_threshold))
+    s += (s.empty() ? "" : " / ") + std::string("fail ") + Num(line.fail_threshold, 3);
   return s.empty() ? "-" : s;
 }
 
@@ -162,13 +165,14 @@ std::string ExposurePlot(const CheckResult& r, int cam, const std::vector<const 
     const FrameSummary& s = *olat[i];
     const double x = plot.X(static_cast<double>(i));
     const double ym = plot.Y(std::max(0.0, s.mean / sat)), yp = plot.Y(std::max(0.0, s.p99 / sat));
-    const char* colour = s.verdict == Verdict::kFail ? "#c62828" : (s.verdict == Verdict::kWarn ? "#e0a000" : "#5c7fa3");
-    plot.Raw(fmt::format("<g><title>camera {} light {}: mean {}, p99 {} of full scale, {}% clipped{}</title>"
-                         "<rect x='{:.1f}' y='{:.1f}' width='{:.1f}' height='{:.1f}' fill='{}'/>"
-                         "<rect x='{:.1f}' y='{:.1f}' width='{:.1f}' height='2' fill='#222'/></g>",
-                         Esc(r.cameras[cam].id), s.light, Num(s.mean / sat, 3), Num(s.p99 / sat, 3),
-                         Num(s.clipped_pct, 2), s.flag.empty() ? "" : " - " + Esc(s.flag), x + 0.5, ym, bw,
-                         plot.Y(0) - ym, colour, x + 0.5, yp - 1, bw));
+    const char* colour =
+        s.verdict == Verdict::kFail ? "#c62828" : (s.verdict == Verdict::kWarn ? "#e0a000" : "#5c7fa3");
+    plot.Raw(fmt::format(
+        "<g><title>camera {} light {}: mean {}, p99 {} of full scale, {}% clipped{}</title>"
+        "<rect x='{:.1f}' y='{:.1f}' width='{:.1f}' height='{:.1f}' fill='{}'/>"
+        "<rect x='{:.1f}' y='{:.1f}' width='{:.1f}' height='2' fill='#222'/></g>",
+        Esc(r.cameras[cam].id), s.light, Num(s.mean / sat, 3), Num(s.p99 / sat, 3), Num(s.clipped_pct, 2),
+        s.flag.empty() ? "" : " - " + Esc(s.flag), x + 0.5, ym, bw, plot.Y(0) - ym, colour, x + 0.5, yp - 1, bw));
   }
   plot.HLine(1.0, "#c62828", "clipping (full scale)");
   plot.HLine(r.options.underexposed_warn, "#c77700", "p99 target for the brightest frame");
@@ -180,23 +184,22 @@ std::string RatioPlot(const CheckResult& r, int cam, const std::vector<const Fra
   for (const auto* s : olat)
     if (std::isfinite(s->energy_ratio)) ymax = std::max(ymax, std::min(6.0, s->energy_ratio * 1.1));
   const double n = static_cast<double>(olat.size());
-  SvgPlot plot(1180, 220, 0, std::max(1.0, n), 0, ymax, "OLAT frame in capture order",
-               "measured / predicted energy");
+  SvgPlot plot(1180, 220, 0, std::max(1.0, n), 0, ymax, "OLAT frame in capture order", "measured / predicted energy");
   for (size_t i = 0; i < olat.size(); ++i) {
     const FrameSummary& s = *olat[i];
     const double x = plot.X(i + 0.5);
     if (!std::isfinite(s.energy_ratio)) {
-      plot.Raw(fmt::format("<g><title>camera {} light {}: {}</title><circle cx='{:.1f}' cy='{:.1f}' r='2' "
-                           "fill='#bbb'/></g>",
-                           Esc(r.cameras[cam].id), s.light,
-                           s.flag.empty() ? "not judged (subject barely lit from here)" : Esc(s.flag), x,
-                           plot.Y(0) - 2));
+      plot.Raw(
+          fmt::format("<g><title>camera {} light {}: {}</title><circle cx='{:.1f}' cy='{:.1f}' r='2' "
+                      "fill='#bbb'/></g>",
+                      Esc(r.cameras[cam].id), s.light,
+                      s.flag.empty() ? "not judged (subject barely lit from here)" : Esc(s.flag), x, plot.Y(0) - 2));
       continue;
     }
-    plot.Raw(fmt::format("<g><title>camera {} light {}: measured/predicted {}</title><circle cx='{:.1f}' cy='{:.1f}' "
-                         "r='3.5' fill='{}'/></g>",
-                         Esc(r.cameras[cam].id), s.light, Num(s.energy_ratio, 3), x, plot.Y(s.energy_ratio),
-                         VerdictColour(s.verdict)));
+    plot.Raw(fmt::format(
+        "<g><title>camera {} light {}: measured/predicted {}</title><circle cx='{:.1f}' cy='{:.1f}' "
+        "r='3.5' fill='{}'/></g>",
+        Esc(r.cameras[cam].id), s.light, Num(s.energy_ratio, 3), x, plot.Y(s.energy_ratio), VerdictColour(s.verdict)));
   }
   plot.HLine(1.0, "#555", "as calibrated");
   plot.HLine(r.options.weak_fail_ratio, "#c62828", "dead");
@@ -217,19 +220,22 @@ std::string DomeMap(const CheckResult& r, int cam, const std::vector<const Frame
     const double el = std::asin(std::clamp(d.y(), -1.0, 1.0)) * 180.0 / M_PI;
     const double t = emax > 0 ? std::clamp(s->measured / emax, 0.0, 1.0) : 0.0;
     const bool bad = s->verdict == Verdict::kFail || s->verdict == Verdict::kWarn;
-    plot.Raw(fmt::format("<g><title>camera {} light {}: az {} el {}, energy {} of max{}</title>"
-                         "<circle cx='{:.1f}' cy='{:.1f}' r='7' fill='{}' stroke='{}' stroke-width='{}'/></g>",
-                         Esc(r.cameras[cam].id), s->light, Num(az, 0), Num(el, 0), Num(t, 2),
-                         s->flag.empty() ? "" : " - " + Esc(s->flag), plot.X(az), plot.Y(el), Ramp(std::sqrt(t)),
-                         bad ? VerdictColour(s->verdict) : "#333", bad ? 3 : 0.5));
+    plot.Raw(
+        fmt::format("<g><title>camera {} light {}: az {} el {}, energy {} of max{}</title>"
+                    "<circle cx='{:.1f}' cy='{:.1f}' r='7' fill='{}' stroke='{}' stroke-width='{}'/></g>",
+                    Esc(r.cameras[cam].id), s->light, Num(az, 0), Num(el, 0), Num(t, 2),
+                    s->flag.empty() ? "" : " - " + Esc(s->flag), plot.X(az), plot.Y(el), Ramp(std::sqrt(t)),
+                    bad ? VerdictColour(s->verdict) : "#333", bad ? 3 : 0.5));
   }
   // Colour legend.
   std::string legend;
   for (int k = 0; k <= 10; ++k)
-    legend += fmt::format("<rect x='{}' y='0' width='16' height='10' fill='{}'/>", 60 + 16 * k, Ramp(std::sqrt(k / 10.0)));
-  plot.Raw(fmt::format("<g transform='translate(880,{})'>{}<text x='56' y='9' class='tick' text-anchor='end'>0</text>"
-                       "<text x='240' y='9' class='tick'>max energy</text></g>",
-                       0, legend));
+    legend +=
+        fmt::format("<rect x='{}' y='0' width='16' height='10' fill='{}'/>", 60 + 16 * k, Ramp(std::sqrt(k / 10.0)));
+  plot.Raw(
+      fmt::format("<g transform='translate(880,{})'>{}<text x='56' y='9' class='tick' text-anchor='end'>0</text>"
+                  "<text x='240' y='9' class='tick'>max energy</text></g>",
+                  0, legend));
   return plot.Finish();
 }
 
@@ -260,9 +266,10 @@ std::string TimePlot(const std::vector<TrackingPoint>& t, bool motion, const Che
   plot.Raw(fmt::format("<polyline points='{}' fill='none' stroke='#1f5fa0' stroke-width='2'/>", pts));
   for (const auto& p : t) {
     const double v = motion ? std::hypot(p.shift_x_px, p.shift_y_px) : p.drift_pct;
-    plot.Raw(fmt::format("<g><title>after light {}: {}{}</title><circle cx='{:.1f}' cy='{:.1f}' r='3' "
-                         "fill='#1f5fa0'/></g>",
-                         p.after_light, Num(v, 2), motion ? " px" : " %", plot.X(p.after_light), plot.Y(v)));
+    plot.Raw(
+        fmt::format("<g><title>after light {}: {}{}</title><circle cx='{:.1f}' cy='{:.1f}' r='3' "
+                    "fill='#1f5fa0'/></g>",
+                    p.after_light, Num(v, 2), motion ? " px" : " %", plot.X(p.after_light), plot.Y(v)));
   }
   if (motion) {
     plot.HLine(o.motion_warn_px, "#c77700", "warn");
@@ -409,7 +416,8 @@ std::string RenderCheckReportHtml(const CheckResult& r) {
 
     h << "<h3>Per-light exposure inside the subject mask (bar = mean, black tick = 99th percentile)</h3>"
       << ExposurePlot(r, static_cast<int>(c), olat);
-    h << "<h3>Light energy against the model (dead, weak and hot lights)</h3>" << RatioPlot(r, static_cast<int>(c), olat);
+    h << "<h3>Light energy against the model (dead, weak and hot lights)</h3>"
+      << RatioPlot(r, static_cast<int>(c), olat);
     h << "<h3>Light energy over the dome</h3>" << DomeMap(r, static_cast<int>(c), olat)
       << "<p class='note'>Each disc is a light at its calibrated azimuth/elevation (rig frame), coloured by the "
          "energy it put on the subject as this camera sees it; flagged lights are ringed in red/amber.</p>";
@@ -437,8 +445,7 @@ std::string RenderCheckReportHtml(const CheckResult& r) {
   return h.str();
 }
 
-io::Status WriteCheckReport(const CheckResult& result, const std::string& dir, bool overwrite,
-                            std::string* html_path) {
+io::Status WriteCheckReport(const CheckResult& result, const std::string& dir, bool overwrite, std::string* html_path) {
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
   const std::string path = dir + "/check_report.html";
   LUMENRIG_RETURN_IF_ERROR(io::WriteTextFile(path, RenderCheckReportHtml(result), overwrite));

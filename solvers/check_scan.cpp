@@ -23,12 +23,18 @@ constexpr int kHistBins = 4096;
 /// Per-camera state built before the OLAT pass.
 struct CameraContext {
   int width = 0, height = 0;
-  cv::Mat mask;             // CV_8U, 255 = subject; full resolution
-  std::vector<int> grid_x;  // column -> analysis cell column
-  std::vector<int> grid_y;  // row -> analysis cell row
+  cv::Mat mask;                         // CV_8U, 255 = subject; full resolution
+  std::vector<int> grid_x;              // column -> analysis cell column
+  std::vector<int> grid_y;              // row -> analysis cell row
   std::vector<int> row_begin, row_end;  // per row, extent [begin, end) of mask pixels
   int grid_w = 0, grid_h = 0;
   double dark_lum = 0.0;
+  // Motion: tracking frames are area-reduced by motion_factor; the subject
+  // box `motion_crop` of the first tracking frame is the reference.
+  int motion_factor = 1;
+  cv::Rect motion_crop;
+  cv::Mat motion_window;  // CV_32F over the crop
+  cv::Mat motion_ref;     // CV_32F crop of the first tracking frame
   Eigen::Vector3d dark_rgb{0, 0, 0};
 };
 
@@ -99,8 +105,10 @@ struct FrameJob {
   std::string path;
 };
 
+/// Reads one frame once. Tracking frames also return their area-reduced
+/// luminance in *motion (empty otherwise).
 void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOptions& decode,
-               const CheckOptions& options, double saturation, FrameSummary* s) {
+               const CheckOptions& options, double saturation, FrameSummary* s, cv::Mat* motion) {
   s->kind = job.kind;
   s->camera = job.camera;
   s->light = job.light;
@@ -139,7 +147,7 @@ void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOp
   int mf = 1, mw = 0, mh = 0;
   std::vector<float> macc;
   if (job.kind == FrameKind::kTracking) {
-    mf = std::max(1, static_cast<int>(std::ceil(std::max(W, H) / options.motion_max_px)));
+    mf = ctx.motion_factor;
     mw = W / mf;
     mh = H / mf;
     macc.assign(static_cast<size_t>(mw) * mh, 0.0f);
@@ -285,9 +293,7 @@ void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOp
   if (!macc.empty()) {
     const float inv = 1.0f / static_cast<float>(mf * mf);
     for (auto& v : macc) v *= inv;
-    s->motion = std::move(macc);
-    s->motion_w = mw;
-    s->motion_h = mh;
+    cv::Mat(mh, mw, CV_32F, macc.data()).copyTo(*motion);
   }
 }
 
@@ -301,13 +307,40 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
   if (decode.encoding == io::Encoding::kSrgb) saturation = io::SrgbToLinear(static_cast<float>(saturation));
   saturation -= decode.black_level;
   if (!(saturation > 0))
-    return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}", session.path,
-                                            decode.black_level, options.saturation_level));
+    return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}",
+                                            session.path, decode.black_level, options.saturation_level));
 
   const int ncam = static_cast<int>(session.cameras.size());
   result->cameras.assign(ncam, CameraSummary{});
   std::vector<CameraContext> contexts(ncam);
   std::vector<std::vector<Finding>> cam_findings(ncam);
+
+  // Every OLAT and tracking frame, in list order per camera.
+  std::vector<FrameJob> jobs;
+  for (int c = 0; c < ncam; ++c) {
+    const io::Camera& cam = session.cameras[c];
+    for (size_t i = 0; i < cam.olat.size(); ++i)
+      jobs.push_back({c, FrameKind::kOlat, cam.olat[i].light, static_cast<int>(i), cam.olat[i].path});
+  }
+  for (int c = 0; c < ncam; ++c) {
+    const io::Camera& cam = session.cameras[c];
+    for (size_t i = 0; i < cam.tracking.size(); ++i)
+      jobs.push_back({c, FrameKind::kTracking, cam.tracking[i].after_light, static_cast<int>(i), cam.tracking[i].path});
+  }
+  result->frames.assign(jobs.size(), FrameSummary{});
+  std::vector<int> first_tracking(ncam, -1);
+  for (size_t j = 0; j < jobs.size(); ++j)
+    if (jobs[j].kind == FrameKind::kTracking && first_tracking[jobs[j].camera] < 0)
+      first_tracking[jobs[j].camera] = static_cast<int>(j);
+  std::vector<char> scanned(jobs.size(), 0);  // frames already read in phase A
+  std::mutex progress_mutex;
+  int done = 0;
+  const int total = static_cast<int>(jobs.size());
+  auto report_progress = [&]() {
+    if (!options.progress) return;
+    std::lock_guard<std::mutex> lock(progress_mutex);
+    options.progress(++done, total);
+  };
 
   // Phase A: per camera, the reference size, mask, dark, clean plate, backlit, lit.
   io::ParallelFor(0, ncam, 1, threads, [&](int64_t b, int64_t e) {
@@ -390,9 +423,10 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
       // Subject window for motion (tracking frames are area-reduced by an
       // integer factor): the mask dilated and feathered, cropped to its box,
       // times a Hann window, so the static background does not anchor the peak.
-      cs.motion_factor = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / options.motion_max_px)));
+      ctx.motion_factor =
+          std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / options.motion_max_px)));
       if (!cam.tracking.empty()) {
-        const int mf = cs.motion_factor, mw = ctx.width / mf, mh = ctx.height / mf;
+        const int mf = ctx.motion_factor, mw = ctx.width / mf, mh = ctx.height / mf;
         cv::Rect crop(0, 0, mw, mh);
         cv::Mat weight(mh, mw, CV_32F, cv::Scalar(1.0f));
         if (!ctx.mask.empty()) {
@@ -413,11 +447,8 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
           cv::Mat hann;
           cv::createHanningWindow(hann, crop.size(), CV_32F);
           cv::Mat w = weight(crop).mul(hann);
-          cs.motion_crop[0] = crop.x;
-          cs.motion_crop[1] = crop.y;
-          cs.motion_crop[2] = crop.width;
-          cs.motion_crop[3] = crop.height;
-          cs.motion_window.assign(w.begin<float>(), w.end<float>());
+          ctx.motion_crop = crop;
+          ctx.motion_window = w;
         }
       }
 
@@ -479,8 +510,10 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
       ctx.grid_h = std::max(1, static_cast<int>(std::lround(ctx.height * std::min(1.0, gscale))));
       ctx.grid_x.resize(ctx.width);
       ctx.grid_y.resize(ctx.height);
-      for (int x = 0; x < ctx.width; ++x) ctx.grid_x[x] = static_cast<int>(static_cast<int64_t>(x) * ctx.grid_w / ctx.width);
-      for (int y = 0; y < ctx.height; ++y) ctx.grid_y[y] = static_cast<int>(static_cast<int64_t>(y) * ctx.grid_h / ctx.height);
+      for (int x = 0; x < ctx.width; ++x)
+        ctx.grid_x[x] = static_cast<int>(static_cast<int64_t>(x) * ctx.grid_w / ctx.width);
+      for (int y = 0; y < ctx.height; ++y)
+        ctx.grid_y[y] = static_cast<int>(static_cast<int64_t>(y) * ctx.grid_h / ctx.height);
       std::vector<int> in(static_cast<size_t>(ctx.grid_w) * ctx.grid_h, 0), all(in.size(), 0);
       for (int y = 0; y < ctx.height; ++y) {
         const unsigned char* m = ctx.mask.empty() ? nullptr : ctx.mask.ptr<unsigned char>(y);
@@ -494,30 +527,31 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
       cs.grid_h = ctx.grid_h;
       cs.grid_valid.resize(in.size());
       for (size_t i = 0; i < in.size(); ++i) cs.grid_valid[i] = (2 * in[i] >= all[i] && all[i] > 0) ? 1 : 0;
+
+      // The first tracking frame becomes the motion/drift reference.
+      if (first_tracking[c] >= 0) {
+        FrameSummary& s = result->frames[first_tracking[c]];
+        cv::Mat grid;
+        ScanFrame(jobs[first_tracking[c]], ctx, decode, options, saturation, &s, &grid);
+        scanned[first_tracking[c]] = 1;
+        if (!grid.empty() && ctx.motion_crop.area() > 0 &&
+            (ctx.motion_crop & cv::Rect(0, 0, grid.cols, grid.rows)) == ctx.motion_crop) {
+          ctx.motion_ref = grid(ctx.motion_crop).clone();
+          s.has_motion = true;
+          s.box_energy = cv::sum(ctx.motion_ref)[0];
+        }
+        report_progress();
+      }
     }
   });
   for (auto& fs : cam_findings)
     for (auto& f : fs) AddFinding(integrity, std::move(f));
 
-  // Phase B: every OLAT and tracking frame once, in parallel across frames.
-  std::vector<FrameJob> jobs;
-  for (int c = 0; c < ncam; ++c) {
-    const io::Camera& cam = session.cameras[c];
-    for (size_t i = 0; i < cam.olat.size(); ++i)
-      jobs.push_back({c, FrameKind::kOlat, cam.olat[i].light, static_cast<int>(i), cam.olat[i].path});
-  }
-  for (int c = 0; c < ncam; ++c) {
-    const io::Camera& cam = session.cameras[c];
-    for (size_t i = 0; i < cam.tracking.size(); ++i)
-      jobs.push_back({c, FrameKind::kTracking, cam.tracking[i].after_light, static_cast<int>(i), cam.tracking[i].path});
-  }
-  result->frames.assign(jobs.size(), FrameSummary{});
-  std::mutex progress_mutex;
-  int done = 0;
-  const int total = static_cast<int>(jobs.size());
+  // Phase B: every other OLAT and tracking frame once, in parallel across frames.
   io::ParallelFor(0, total, 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t j = b; j < e; ++j) {
       const FrameJob& job = jobs[j];
+      if (scanned[j]) continue;  // read in phase A
       const CameraContext& ctx = contexts[job.camera];
       FrameSummary& s = result->frames[j];
       if (ctx.width == 0) {
@@ -529,12 +563,20 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
         auto probe = io::ProbeImage(job.path);
         s.error = probe.ok() ? "unreadable" : probe.status().message();
       } else {
-        ScanFrame(job, ctx, decode, options, saturation, &s);
+        cv::Mat grid;
+        ScanFrame(job, ctx, decode, options, saturation, &s, &grid);
+        // Tracking: energy over the subject box and shift against the reference.
+        if (!grid.empty() && !ctx.motion_ref.empty() &&
+            (ctx.motion_crop & cv::Rect(0, 0, grid.cols, grid.rows)) == ctx.motion_crop) {
+          const cv::Mat cur = grid(ctx.motion_crop);
+          s.box_energy = cv::sum(cur)[0];
+          const cv::Point2d d = EstimateShift(ctx.motion_ref, cur.clone(), ctx.motion_window);
+          s.shift_x_px = d.x * ctx.motion_factor;
+          s.shift_y_px = d.y * ctx.motion_factor;
+          s.has_motion = true;
+        }
       }
-      if (options.progress) {
-        std::lock_guard<std::mutex> lock(progress_mutex);
-        options.progress(++done, total);
-      }
+      report_progress();
     }
   });
   return io::Status::Ok();

@@ -144,37 +144,21 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
     std::vector<const FrameSummary*> tr;
     for (const auto& s : result->frames)
       if (s.camera == static_cast<int>(c) && s.kind == FrameKind::kTracking && s.readable && s.error.empty() &&
-          !s.motion.empty())
+          s.has_motion)
         tr.push_back(&s);
     std::sort(tr.begin(), tr.end(), [](const FrameSummary* a, const FrameSummary* b) { return a->order < b->order; });
-    if (tr.size() < 2 || !(tr[0]->mean > 0)) continue;
+    if (tr.size() < 2 || !(tr[0]->box_energy > 0)) continue;
     ++cams_with_tracking;
     const FrameSummary& first = *tr[0];
-    const cv::Rect crop(cs.motion_crop[0], cs.motion_crop[1], cs.motion_crop[2], cs.motion_crop[3]);
-    const bool have_window = crop.area() > 0 && cs.motion_window.size() == static_cast<size_t>(crop.area());
-    cv::Mat window = have_window ? cv::Mat(crop.height, crop.width, CV_32F, cs.motion_window.data()).clone() : cv::Mat();
-    auto view = [&](const FrameSummary& s) {
-      cv::Mat full(s.motion_h, s.motion_w, CV_32F, const_cast<float*>(s.motion.data()));
-      if (have_window && crop.x + crop.width <= full.cols && crop.y + crop.height <= full.rows) return full(crop).clone();
-      return full.clone();
-    };
-    const cv::Mat ref = view(first);
-    // Drift from the energy over the subject's box (the mask dilated), so a
-    // subject that moves stays inside what is summed.
-    const double first_energy = cv::sum(ref)[0];
-    if (!have_window || window.size() != ref.size()) window.release();
     cs.tracking.clear();
     for (const FrameSummary* s : tr) {
+      // Drift from the energy over the subject's box (the mask dilated), so a
+      // subject that moves stays inside what is summed.
       TrackingPoint t;
       t.after_light = s->light;
-      t.drift_pct = 100.0 * (s->mean / first.mean - 1.0);
-      if (s != tr[0] && s->motion_w == first.motion_w && s->motion_h == first.motion_h) {
-        const cv::Mat cur = view(*s);
-        if (first_energy > 0) t.drift_pct = 100.0 * (cv::sum(cur)[0] / first_energy - 1.0);
-        const cv::Point2d d = EstimateShift(ref, cur, window);
-        t.shift_x_px = d.x * cs.motion_factor;
-        t.shift_y_px = d.y * cs.motion_factor;
-      }
+      t.drift_pct = 100.0 * (s->box_energy / first.box_energy - 1.0);
+      t.shift_x_px = s->shift_x_px;
+      t.shift_y_px = s->shift_y_px;
       cs.tracking.push_back(t);
     }
     // Worst frame against the first, and worst interval between neighbours.
@@ -196,10 +180,9 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
     const auto& td = cs.tracking[worst_d];
     const double dval = std::abs(td.drift_pct);
     const double step_dv = cs.tracking[step_d].drift_pct - cs.tracking[step_d - 1].drift_pct;
-    const std::string d_interval = fmt::format("largest step {}{}% between the tracking frames {} and {}",
-                                               step_dv >= 0 ? "+" : "", Num(step_dv, 2),
-                                               After(cs.tracking[step_d - 1].after_light),
-                                               After(cs.tracking[step_d].after_light));
+    const std::string d_interval = fmt::format(
+        "largest step {}{}% between the tracking frames {} and {}", step_dv >= 0 ? "+" : "", Num(step_dv, 2),
+        After(cs.tracking[step_d - 1].after_light), After(cs.tracking[step_d].after_light));
     if (dval >= drift.value) {
       drift.value = dval;
       drift_where = fmt::format("camera {}, tracking frame {}; {}", cs.id, After(td.after_light), d_interval);
@@ -222,8 +205,8 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
     const auto& b = cs.tracking[step_m];
     const std::string m_interval =
         fmt::format("largest step {} px between the tracking frames {} and {}",
-                    Num(std::hypot(b.shift_x_px - a.shift_x_px, b.shift_y_px - a.shift_y_px), 2),
-                    After(a.after_light), After(b.after_light));
+                    Num(std::hypot(b.shift_x_px - a.shift_x_px, b.shift_y_px - a.shift_y_px), 2), After(a.after_light),
+                    After(b.after_light));
     if (mval >= motion.value) {
       motion.value = mval;
       motion_where = fmt::format("camera {}, tracking frame {}; {}", cs.id, After(tm.after_light), m_interval);
@@ -235,10 +218,10 @@ void CheckStability(const io::Session& session, const CheckOptions& options, Che
       f.lights = {tm.after_light};
       f.frame = tr[worst_m]->path;
       f.value = mval;
-      f.message = fmt::format("camera {}: subject moved {} px (dx {}, dy {}) from the first tracking frame to the one "
-                              "{}; {}",
-                              cs.id, Num(mval, 2), Num(tm.shift_x_px, 2), Num(tm.shift_y_px, 2), After(tm.after_light),
-                              m_interval);
+      f.message = fmt::format(
+          "camera {}: subject moved {} px (dx {}, dy {}) from the first tracking frame to the one "
+          "{}; {}",
+          cs.id, Num(mval, 2), Num(tm.shift_x_px, 2), Num(tm.shift_y_px, 2), After(tm.after_light), m_interval);
       AddFinding(&motion, std::move(f));
     }
   }
@@ -273,9 +256,10 @@ void CheckMatting(const io::Session& session, const CheckOptions& options, Check
       f.camera = cs.id;
       f.frame = session.cameras[c].backlit;
       f.value = mag;
-      f.message = fmt::format("camera {}: backlit frame is shifted {} px (dx {}, dy {}) against the clean plate; the "
-                              "camera moved between them, difference matting will leave edges",
-                              cs.id, Num(mag, 2), Num(cs.align_dx_px, 2), Num(cs.align_dy_px, 2));
+      f.message = fmt::format(
+          "camera {}: backlit frame is shifted {} px (dx {}, dy {}) against the clean plate; the "
+          "camera moved between them, difference matting will leave edges",
+          cs.id, Num(mag, 2), Num(cs.align_dx_px, 2), Num(cs.align_dy_px, 2));
       AddFinding(&align, std::move(f));
     }
   }

@@ -68,7 +68,8 @@ void CheckCompleteness(const io::Session& session, CheckResult* result_out, Chec
         f.verdict = Verdict::kFail;
         f.camera = cam.id;
         f.lights = {id};
-        f.message = fmt::format("camera {}: OLAT frame for light {} which is not in rig {}", cam.id, id, session.rig.name);
+        f.message =
+            fmt::format("camera {}: OLAT frame for light {} which is not in rig {}", cam.id, id, session.rig.name);
         AddFinding(line, std::move(f));
       }
       if (count > 1) {
@@ -122,8 +123,8 @@ void CheckCompleteness(const io::Session& session, CheckResult* result_out, Chec
   }
   line->value = static_cast<double>(line->findings.size());
   line->summary = line->findings.empty()
-                      ? fmt::format("{}/{} OLAT frames present, readable and consistent ({} cameras x {} lights)",
-                                    good, expected, session.cameras.size(), session.rig.lights.size())
+                      ? fmt::format("{}/{} OLAT frames present, readable and consistent ({} cameras x {} lights)", good,
+                                    expected, session.cameras.size(), session.rig.lights.size())
                       : fmt::format("{} problem(s); {}/{} OLAT frames usable", line->findings.size(), good, expected);
 }
 
@@ -131,10 +132,10 @@ void CheckCompleteness(const io::Session& session, CheckResult* result_out, Chec
 
 using check_detail::AddFinding;
 
-io::Status CheckSession(const io::Session& session, const CheckOptions& options_in, CheckResult* result,
-                        int threads) {
+io::Status CheckSession(const io::Session& session, const CheckOptions& options_in, CheckResult* result, int threads) {
   LUMENRIG_RETURN_IF_ERROR(options_in.Validate());
-  if (session.cameras.empty()) return io::Status::BadInput(fmt::format("{}: cameras: the session lists no camera", session.path));
+  if (session.cameras.empty())
+    return io::Status::BadInput(fmt::format("{}: cameras: the session lists no camera", session.path));
   const auto start = std::chrono::steady_clock::now();
   *result = CheckResult{};
   result->session_path = session.path;
@@ -161,7 +162,8 @@ io::Status CheckSession(const io::Session& session, const CheckOptions& options_
 
   // Mark frames named by findings (contact sheet) and compute the verdict.
   for (const auto& line : lines) {
-    result->verdict = Worse(result->verdict, line.verdict);
+    // SKIP lines never fail a session: the verdict is PASS, WARN or FAIL.
+    if (line.verdict != Verdict::kSkip) result->verdict = Worse(result->verdict, line.verdict);
     for (const auto& f : line.findings) {
       for (auto& s : result->frames) {
         const bool same_path = !f.frame.empty() && f.frame == s.path;
@@ -234,7 +236,8 @@ nlohmann::json CheckResultToJson(const CheckResult& result) {
     if (cam.has_alignment) jc["backlit_shift_px"] = {cam.align_dx_px, cam.align_dy_px};
     json track = json::array();
     for (const auto& t : cam.tracking)
-      track.push_back({{"after_light", t.after_light}, {"drift_pct", t.drift_pct}, {"shift_px", {t.shift_x_px, t.shift_y_px}}});
+      track.push_back(
+          {{"after_light", t.after_light}, {"drift_pct", t.drift_pct}, {"shift_px", {t.shift_x_px, t.shift_y_px}}});
     jc["tracking"] = std::move(track);
     cameras.push_back(std::move(jc));
   }

@@ -19,26 +19,23 @@ constexpr double kBackdropBehind_m = 0.9;
 constexpr double kShadowEpsilon_m = 1e-6;
 
 struct SpecularParams {
-  double ks = 0.0;        // Blinn-Phong lobe weight; GGX: Schlick F0
-  double exponent = 1.0;  // Blinn-Phong exponent
-  double roughness = 1.0; // GGX alpha
+  double ks = 0.0;         // Blinn-Phong lobe weight; GGX: Schlick F0
+  double exponent = 1.0;   // Blinn-Phong exponent
+  double roughness = 1.0;  // GGX alpha
 };
 
 SpecularParams SpecularFor(Material m) {
   switch (m) {
-    case Material::kPlaster:
-      return {0.05, 30.0, 0.35};
-    case Material::kGreySphere:
-      return {0.06, 80.0, 0.15};
-    case Material::kHair:
-      return {0.0, 1.0, 1.0};
+    case Material::kPlaster: return {0.05, 30.0, 0.35};
+    case Material::kGreySphere: return {0.06, 80.0, 0.15};
+    case Material::kHair: return {0.0, 1.0, 1.0};
   }
   return {};
 }
 
 /// Specular radiance factor (times light intensity) including the n.l term.
-double SpecularTerm(SpecularModel model, const SpecularParams& sp, const Eigen::Vector3d& n,
-                    const Eigen::Vector3d& l, const Eigen::Vector3d& v, double n_dot_l) {
+double SpecularTerm(SpecularModel model, const SpecularParams& sp, const Eigen::Vector3d& n, const Eigen::Vector3d& l,
+                    const Eigen::Vector3d& v, double n_dot_l) {
   if (model == SpecularModel::kNone || sp.ks <= 0.0) return 0.0;
   const Eigen::Vector3d h = (l + v).normalized();
   const double n_dot_h = std::max(0.0, n.dot(h));
@@ -97,7 +94,8 @@ CameraView CameraView::Build(const SimOptions& options, const io::Camera& camera
         SurfaceHit hit;
         const bool solid = scene.Intersect(origin, d, 0.0, std::numeric_limits<double>::infinity(), &hit);
         HairHit hair;
-        const bool has_hair = scene.IntersectHair(origin, d, solid ? hit.t : std::numeric_limits<double>::infinity(), &hair);
+        const bool has_hair =
+            scene.IntersectHair(origin, d, solid ? hit.t : std::numeric_limits<double>::infinity(), &hair);
         const size_t i = static_cast<size_t>(y) * w + x;
         signature[i] = (solid ? hit.primitive + 1 : 0) * 2 + (has_hair ? 1 : 0);
         const double s = backdrop_z_m / -dc.z();
@@ -211,8 +209,10 @@ TruthMaps CameraView::Truth() const {
       const double len = n.norm();
       if (len > 0.0) n /= len;
       a /= alpha;
-      t.normals.at<cv::Vec3f>(y, x) = cv::Vec3f(static_cast<float>(n.x()), static_cast<float>(n.y()), static_cast<float>(n.z()));
-      t.albedo.at<cv::Vec3f>(y, x) = cv::Vec3f(static_cast<float>(a.x()), static_cast<float>(a.y()), static_cast<float>(a.z()));
+      t.normals.at<cv::Vec3f>(y, x) =
+          cv::Vec3f(static_cast<float>(n.x()), static_cast<float>(n.y()), static_cast<float>(n.z()));
+      t.albedo.at<cv::Vec3f>(y, x) =
+          cv::Vec3f(static_cast<float>(a.x()), static_cast<float>(a.y()), static_cast<float>(a.z()));
       const float alpha_f = alpha_[i];
       t.alpha.at<float>(y, x) = alpha_f;
       t.depth.at<float>(y, x) = static_cast<float>(depth / alpha);
@@ -240,7 +240,8 @@ cv::Mat CameraView::Composite(const cv::Mat& subject_radiance, double scale, Bac
   return out;
 }
 
-cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdrop, bool show_subject, int threads) const {
+cv::Mat CameraView::Render(const std::vector<LitLight>& lights, Backdrop backdrop, bool show_subject,
+                           int threads) const {
   struct Prepared {
     bool near;
     Eigen::Vector3d vec;  // direction (unit) or position, rig frame
@@ -316,8 +317,8 @@ void ApplySensor(const SimOptions& options, int camera_index, uint64_t frame_key
   io::ParallelFor(0, image->rows, kRowGrain, threads, [&](int64_t y0, int64_t y1) {
     for (int64_t y = y0; y < y1; ++y) {
       float* row = image->ptr<float>(static_cast<int>(y));
-      std::mt19937_64 rng(io::DeriveSeed(options.seed, static_cast<uint64_t>(camera_index), frame_key,
-                                         static_cast<uint64_t>(y)));
+      std::mt19937_64 rng(
+          io::DeriveSeed(options.seed, static_cast<uint64_t>(camera_index), frame_key, static_cast<uint64_t>(y)));
       std::normal_distribution<float> gauss(0.0f, 1.0f);
       for (int i = 0; i < w * channels; ++i) {
         float v = row[i];

@@ -52,8 +52,8 @@ const StageAdapter* FindAdapter(StageKind kind) {
 }
 
 std::string HashCachePath(const RunOptions& o) {
-  const std::string name = o.shard_count > 1 ? fmt::format(".lumenrig-hashes.{}.json", o.shard_index)
-                                             : std::string(".lumenrig-hashes.json");
+  const std::string name =
+      o.shard_count > 1 ? fmt::format(".lumenrig-hashes.{}.json", o.shard_index) : std::string(".lumenrig-hashes.json");
   return (fs::path(o.out_dir) / name).string();
 }
 
@@ -127,7 +127,8 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
   if (options.sessions.empty()) return io::Status::BadInput("run: no session given");
   if (options.out_dir.empty()) return io::Status::BadInput("run: --out is required");
   if (options.mem_budget_bytes < (int64_t{64} << 20))
-    return io::Status::BadInput(fmt::format("--mem-budget: {} bytes is below the 64 MiB minimum", options.mem_budget_bytes));
+    return io::Status::BadInput(
+        fmt::format("--mem-budget: {} bytes is below the 64 MiB minimum", options.mem_budget_bytes));
   *plan = RunPlan();
   if (options.shard_count < 1 || options.shard_index < 0 || options.shard_index >= options.shard_count)
     return io::Status::Internal("run: invalid shard");
@@ -139,8 +140,8 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
     if (!s.ok()) return s.status();
     const std::string id = s->Id();
     if (seen_ids.count(id))
-      return io::Status::BadInput(fmt::format("{}: session id \"{}\" also used by {}; outputs would collide", s->path, id,
-                                              seen_ids[id]));
+      return io::Status::BadInput(
+          fmt::format("{}: session id \"{}\" also used by {}; outputs would collide", s->path, id, seen_ids[id]));
     seen_ids[id] = s->path;
     plan->sessions.push_back(std::move(s).value());
   }
@@ -231,9 +232,8 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
         if (u.state == UnitState::kUpToDate) {
           for (int d : u.depends_on) {
             const UnitPlan& up = plan->units[static_cast<size_t>(d)];
-            if (up.state != UnitState::kUpToDate &&
-                std::find(adapter.key_upstream.begin(), adapter.key_upstream.end(), up.stage) !=
-                    adapter.key_upstream.end()) {
+            if (up.state != UnitState::kUpToDate && std::find(adapter.key_upstream.begin(), adapter.key_upstream.end(),
+                                                              up.stage) != adapter.key_upstream.end()) {
               u.state = UnitState::kStale;
               u.reason = std::string("upstream ") + StageName(up.stage) + " will run";
               break;
@@ -436,7 +436,8 @@ io::Status ExecuteRun(const RunOptions& options, RunPlan* plan, const RunEvents&
   // 256 MiB of the budget (common practice floor for a band of a 12 MP stack).
   const int threads = io::ResolveThreads(options.threads);
   const int64_t floor_bytes = int64_t{256} << 20;
-  const int in_flight = static_cast<int>(std::max<int64_t>(1, std::min<int64_t>(threads, options.mem_budget_bytes / floor_bytes)));
+  const int in_flight =
+      static_cast<int>(std::max<int64_t>(1, std::min<int64_t>(threads, options.mem_budget_bytes / floor_bytes)));
   ex.unit_budget = options.mem_budget_bytes / in_flight;
 
   tbb::flow::graph g;
@@ -467,8 +468,8 @@ io::Status ExecuteRun(const RunOptions& options, RunPlan* plan, const RunEvents&
   }
   if (!ex.first_error.ok()) return ex.first_error;
   if (!ex.qa_failed.empty() && !options.force)
-    return io::Status::DataFail(fmt::format("QA failed for {} session(s); later stages skipped (use --force to run them)",
-                                            ex.qa_failed.size()));
+    return io::Status::DataFail(fmt::format(
+        "QA failed for {} session(s); later stages skipped (use --force to run them)", ex.qa_failed.size()));
   return io::Status::Ok();
 }
 

@@ -2,9 +2,9 @@
 // says which inputs and options its outputs depend on.
 #include "pipeline_stages.h"
 
-#include <filesystem>
 #include <algorithm>
 #include <cstdio>
+#include <filesystem>
 #include <fstream>
 #include <map>
 
@@ -32,9 +32,12 @@ struct MapSource {
   const char* dataset;
 };
 constexpr MapSource kCameraMaps[] = {
-    {"normals", "normals.exr", "normals"},       {"normals", "albedo.exr", "albedo"},
-    {"normals", "confidence.exr", "normals_confidence"}, {"normals", "depth.exr", "depth"},
-    {"matte", "alpha.exr", "alpha"},             {"matte", "foreground.exr", "foreground"},
+    {"normals", "normals.exr", "normals"},
+    {"normals", "albedo.exr", "albedo"},
+    {"normals", "confidence.exr", "normals_confidence"},
+    {"normals", "depth.exr", "depth"},
+    {"matte", "alpha.exr", "alpha"},
+    {"matte", "foreground.exr", "foreground"},
     {"matte", "confidence.exr", "alpha_confidence"},
 };
 
@@ -127,7 +130,8 @@ io::Status CheckOptionsFromRun(const RunOptions& o, solvers::CheckOptions* optio
 io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
   solvers::CheckOptions options;
   LUMENRIG_RETURN_IF_ERROR(CheckOptionsFromRun(*ctx.options, &options));
-  if (ctx.progress) options.progress = [&ctx](int done, int total) { ctx.progress(total > 0 ? double(done) / total : 0.0); };
+  if (ctx.progress)
+    options.progress = [&ctx](int done, int total) { ctx.progress(total > 0 ? double(done) / total : 0.0); };
   solvers::CheckResult result;
   LUMENRIG_RETURN_IF_ERROR(solvers::CheckSession(*ctx.session, options, &result, ctx.threads));
   const std::string dir = Join(ctx.session_out_dir, "check");

@@ -84,18 +84,19 @@ double SmoothStep(double e0, double e1, double x) {
 
 }  // namespace
 
-Scene::Scene(const Eigen::Vector3d& subject_offset_rig, bool with_hair) : offset_(subject_offset_rig), with_hair_(with_hair) {
+Scene::Scene(const Eigen::Vector3d& subject_offset_rig, bool with_hair)
+    : offset_(subject_offset_rig), with_hair_(with_hair) {
   const Eigen::Vector3d o = subject_offset_rig;
   const Eigen::Vector3d head_c(0.0, 0.10, 0.0), head_r(0.072, 0.095, 0.085);
   primitives_ = {
-      Ellipsoid(o + head_c, head_r),                                                       // head
-      Ellipsoid(o + Eigen::Vector3d(0.0, 0.083, 0.081), Eigen::Vector3d(0.013, 0.028, 0.022)),  // nose
-      Ellipsoid(o + Eigen::Vector3d(0.0, 0.030, 0.040), Eigen::Vector3d(0.030, 0.025, 0.028)),  // chin
-      Ellipsoid(o + Eigen::Vector3d(0.0, 0.125, 0.064), Eigen::Vector3d(0.050, 0.014, 0.024)),  // brow
-      Ellipsoid(o + Eigen::Vector3d(0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)),  // ear +x
-      Ellipsoid(o + Eigen::Vector3d(-0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)), // ear -x
-      CylinderY(o.x(), o.z() - 0.005, 0.042, o.y() - 0.10, o.y() + 0.05),                    // neck
-      Ellipsoid(o + Eigen::Vector3d(0.0, -0.19, -0.01), Eigen::Vector3d(0.19, 0.11, 0.095)),   // shoulders
+      Ellipsoid(o + head_c, head_r),                                                                // head
+      Ellipsoid(o + Eigen::Vector3d(0.0, 0.083, 0.081), Eigen::Vector3d(0.013, 0.028, 0.022)),      // nose
+      Ellipsoid(o + Eigen::Vector3d(0.0, 0.030, 0.040), Eigen::Vector3d(0.030, 0.025, 0.028)),      // chin
+      Ellipsoid(o + Eigen::Vector3d(0.0, 0.125, 0.064), Eigen::Vector3d(0.050, 0.014, 0.024)),      // brow
+      Ellipsoid(o + Eigen::Vector3d(0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)),   // ear +x
+      Ellipsoid(o + Eigen::Vector3d(-0.071, 0.095, -0.005), Eigen::Vector3d(0.012, 0.028, 0.018)),  // ear -x
+      CylinderY(o.x(), o.z() - 0.005, 0.042, o.y() - 0.10, o.y() + 0.05),                           // neck
+      Ellipsoid(o + Eigen::Vector3d(0.0, -0.19, -0.01), Eigen::Vector3d(0.19, 0.11, 0.095)),        // shoulders
       Ellipsoid(o + kGreySphereCentre, Eigen::Vector3d::Constant(kGreySphereRadius_m), Material::kGreySphere),
   };
   hair_centre_ = o + head_c + Eigen::Vector3d(0.0, 0.008, -0.006);
@@ -174,12 +175,9 @@ bool Scene::IntersectHair(const Eigen::Vector3d& origin, const Eigen::Vector3d& 
 
 Eigen::Vector3f Scene::Albedo(Material material, const Eigen::Vector3d& position_rig) const {
   switch (material) {
-    case Material::kGreySphere:
-      return Eigen::Vector3f::Constant(kGreySphereAlbedo);
-    case Material::kHair:
-      return Eigen::Vector3f(0.22f, 0.15f, 0.09f);
-    case Material::kPlaster:
-      break;
+    case Material::kGreySphere: return Eigen::Vector3f::Constant(kGreySphereAlbedo);
+    case Material::kHair: return Eigen::Vector3f(0.22f, 0.15f, 0.09f);
+    case Material::kPlaster: break;
   }
   // Solid procedural texture attached to the subject (moves with it).
   const Eigen::Vector3d p = position_rig - offset_;
@@ -187,16 +185,14 @@ Eigen::Vector3f Scene::Albedo(Material material, const Eigen::Vector3d& position
                              std::sin(33.0 * p.z() - 19.0 * p.y() + 1.7 * std::sin(23.0 * p.x()));
   const double tint = 0.5 + 0.5 * std::sin(9.0 * p.x() + 7.0 * p.y());
   const double shade = 0.78 + 0.22 * f;
-  return Eigen::Vector3f(static_cast<float>(0.80 * shade * (0.95 + 0.08 * tint)),
-                         static_cast<float>(0.76 * shade),
+  return Eigen::Vector3f(static_cast<float>(0.80 * shade * (0.95 + 0.08 * tint)), static_cast<float>(0.76 * shade),
                          static_cast<float>(0.70 * shade * (1.03 - 0.08 * tint)));
 }
 
 Eigen::Vector3f BackdropRadiance(Backdrop backdrop, double x, double y) {
   auto wave = [](double v) { return 0.5 + 0.5 * std::sin(v); };
   switch (backdrop) {
-    case Backdrop::kBlack:
-      return Eigen::Vector3f::Zero();
+    case Backdrop::kBlack: return Eigen::Vector3f::Zero();
     case Backdrop::kStudioWall: {
       // Painted panels with a soft vertical gradient.
       const double panel = std::sin(2.0 * M_PI * x / 0.25) * std::sin(2.0 * M_PI * y / 0.30);

@@ -1,7 +1,7 @@
 // Writes a simulated session folder (frames, truth, session.json, rig.json).
 #include <atomic>
-#include <map>
 #include <filesystem>
+#include <map>
 #include <mutex>
 
 #include <fmt/format.h>
@@ -136,7 +136,9 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
     // Paths (and the session entries) of this camera's frames.
     std::vector<FrameJob> jobs;
     const SimFaults& f = o.faults;
-    auto olat_name = [&](int light_index) { return fmt::format("{}/olat_{:03d}.exr", cam.id, rig.lights[light_index].id); };
+    auto olat_name = [&](int light_index) {
+      return fmt::format("{}/olat_{:03d}.exr", cam.id, rig.lights[light_index].id);
+    };
     for (FrameJob job : plan) {
       switch (job.kind) {
         case JobKind::kOlat: {
@@ -271,8 +273,7 @@ io::Status SimulateSession(const SimOptions& o, const std::string& out_dir, SimS
   LUMENRIG_RETURN_IF_ERROR(
       io::WriteTextFile(dir_s + "/truth/simulation.json", SimOptionsToJson(o).dump(2) + "\n", o.overwrite));
   // session.json last: a folder without it is visibly incomplete.
-  LUMENRIG_RETURN_IF_ERROR(
-      io::WriteTextFile(session.path, io::SessionToJson(session).dump(2) + "\n", o.overwrite));
+  LUMENRIG_RETURN_IF_ERROR(io::WriteTextFile(session.path, io::SessionToJson(session).dump(2) + "\n", o.overwrite));
   if (summary != nullptr) {
     summary->session_path = session.path;
     summary->frames_written = frames_written;

@@ -21,18 +21,13 @@ double Uniform01(uint64_t h) { return static_cast<double>(h >> 11) * (1.0 / 9007
 
 double Round4(double v) { return std::round(v * 1e4) / 1e4; }
 
-const char* LayoutName(LightLayout layout) {
-  return layout == LightLayout::kTwoRing ? "two-ring" : "fibonacci-dome";
-}
+const char* LayoutName(LightLayout layout) { return layout == LightLayout::kTwoRing ? "two-ring" : "fibonacci-dome"; }
 
 const char* SpecularName(SpecularModel m) {
   switch (m) {
-    case SpecularModel::kNone:
-      return "none";
-    case SpecularModel::kBlinnPhong:
-      return "blinn-phong";
-    case SpecularModel::kGgx:
-      return "ggx";
+    case SpecularModel::kNone: return "none";
+    case SpecularModel::kBlinnPhong: return "blinn-phong";
+    case SpecularModel::kGgx: return "ggx";
   }
   return "?";
 }
@@ -49,13 +44,18 @@ io::Status ValidateSimOptions(const SimOptions& o) {
   if (o.num_cameras < 1 || o.num_cameras > 64) return bad(fmt::format("cameras: {} is outside [1, 64]", o.num_cameras));
   if (!(o.min_elevation_deg >= -90.0 && o.min_elevation_deg < 80.0))
     return bad(fmt::format("min elevation: {} deg is outside [-90, 80)", o.min_elevation_deg));
-  if (!(o.rig_radius_m > 0.5)) return bad(fmt::format("rig radius: {} m must exceed 0.5 m (the subject's size)", o.rig_radius_m));
-  if (!(o.camera_distance_m > 0.5)) return bad(fmt::format("camera distance: {} m must exceed 0.5 m", o.camera_distance_m));
+  if (!(o.rig_radius_m > 0.5))
+    return bad(fmt::format("rig radius: {} m must exceed 0.5 m (the subject's size)", o.rig_radius_m));
+  if (!(o.camera_distance_m > 0.5))
+    return bad(fmt::format("camera distance: {} m must exceed 0.5 m", o.camera_distance_m));
   if (!(o.view_height_m > 0.05)) return bad(fmt::format("view height: {} m must exceed 0.05 m", o.view_height_m));
-  if (o.supersample < 1 || o.supersample > 16) return bad(fmt::format("supersample: {} is outside [1, 16]", o.supersample));
+  if (o.supersample < 1 || o.supersample > 16)
+    return bad(fmt::format("supersample: {} is outside [1, 16]", o.supersample));
   if (o.tracking_every < 0) return bad(fmt::format("tracking every: {} must be >= 0", o.tracking_every));
-  if (!(o.black_level >= 0.0 && o.black_level < 0.5)) return bad(fmt::format("black level: {} is outside [0, 0.5)", o.black_level));
-  if (!(o.read_noise >= 0.0f) || !(o.full_well_electrons > 0.0f)) return bad("noise: read noise must be >= 0 and full well > 0");
+  if (!(o.black_level >= 0.0 && o.black_level < 0.5))
+    return bad(fmt::format("black level: {} is outside [0, 0.5)", o.black_level));
+  if (!(o.read_noise >= 0.0f) || !(o.full_well_electrons > 0.0f))
+    return bad("noise: read noise must be >= 0 and full well > 0");
   if (o.subject.empty()) return bad("subject: empty name");
   const SimFaults& f = o.faults;
   auto check_target = [&](const char* name, const std::string& camera, int light) -> io::Status {
@@ -64,13 +64,15 @@ io::Status ValidateSimOptions(const SimOptions& o) {
       if (CameraId(k) == camera) cam_index = k;
     }
     if (cam_index < 0)
-      return bad(fmt::format("fault {}: unknown camera '{}' (cameras are cam00..{})", name, camera, CameraId(o.num_cameras - 1)));
+      return bad(fmt::format("fault {}: unknown camera '{}' (cameras are cam00..{})", name, camera,
+                             CameraId(o.num_cameras - 1)));
     if (light < 0 || light >= o.num_lights)
       return bad(fmt::format("fault {}: unknown light id {} (lights are 0..{})", name, light, o.num_lights - 1));
     return io::Status::Ok();
   };
   if (f.dead_light) LUMENRIG_RETURN_IF_ERROR(check_target("dead-light", f.dead_light->camera, f.dead_light->light));
-  if (f.missing_frame) LUMENRIG_RETURN_IF_ERROR(check_target("missing", f.missing_frame->camera, f.missing_frame->light));
+  if (f.missing_frame)
+    LUMENRIG_RETURN_IF_ERROR(check_target("missing", f.missing_frame->camera, f.missing_frame->light));
   if (f.saturated_light)
     LUMENRIG_RETURN_IF_ERROR(check_target("saturate", f.saturated_light->camera, f.saturated_light->light));
   if (f.swapped_frames) {
@@ -138,7 +140,7 @@ std::vector<io::Camera> MakeSimCameras(const SimOptions& o) {
     const double yaw = (k % 2 == 1 ? 1.0 : -1.0) * step * o.camera_yaw_step_deg * M_PI / 180.0;
     Eigen::Matrix3d r;
     r << std::cos(yaw), 0.0, -std::sin(yaw),  //
-        0.0, 1.0, 0.0,                          //
+        0.0, 1.0, 0.0,                        //
         std::sin(yaw), 0.0, std::cos(yaw);
     const Eigen::Vector3d centre_rig = o.camera_distance_m * r.row(2).transpose();
     cam.camera_from_rig = Eigen::Matrix4d::Identity();
@@ -187,7 +189,8 @@ std::vector<LitLight> AllLights(const io::Rig& rig, double gain) {
 io::Expected<SimulatedCamera> SimulateCamera(const SimOptions& o, int camera_index) {
   LUMENRIG_RETURN_IF_ERROR(ValidateSimOptions(o));
   if (camera_index < 0 || camera_index >= o.num_cameras)
-    return io::Status::BadInput(fmt::format("simulate: camera index {} is outside [0, {})", camera_index, o.num_cameras));
+    return io::Status::BadInput(
+        fmt::format("simulate: camera index {} is outside [0, {})", camera_index, o.num_cameras));
   SimulatedCamera out;
   out.rig = MakeSimRig(o);
   out.camera = MakeSimCameras(o)[camera_index];
@@ -202,7 +205,8 @@ io::Expected<SimulatedCamera> SimulateCamera(const SimOptions& o, int camera_ind
     const double shift = o.faults.motion_px * t;
     cv::Mat frame;
     if (shift != 0.0) {
-      frame = CameraView::Build(o, out.camera, shift, 0.0, o.threads).Render({{light, gain}}, Backdrop::kBlack, true, o.threads);
+      frame = CameraView::Build(o, out.camera, shift, 0.0, o.threads)
+                  .Render({{light, gain}}, Backdrop::kBlack, true, o.threads);
     } else {
       frame = view.Render({{light, gain}}, Backdrop::kBlack, true, o.threads);
     }

@@ -2,8 +2,8 @@
 // exactly what the simulator generates for their documented options.
 #include <fstream>
 
-#include <Eigen/LU>
 #include <gtest/gtest.h>
+#include <Eigen/LU>
 #include <nlohmann/json.hpp>
 
 #include "lumenrig/capture_io/session.h"

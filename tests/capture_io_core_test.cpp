@@ -81,7 +81,10 @@ TEST(Exr, FloatRoundTripIsExactAndBandsMatchWholeImage) {
 TEST(Exr, HalfRoundTripWithinHalfPrecision) {
   test::TempDir dir;
   const cv::Mat img = Ramp(32, 16, 1);
-  { auto st = io::WriteExr(dir / "y.exr", img); ASSERT_TRUE(st.ok()) << st.message(); }
+  {
+    auto st = io::WriteExr(dir / "y.exr", img);
+    ASSERT_TRUE(st.ok()) << st.message();
+  }
   auto back = io::ReadImage(dir / "y.exr");
   ASSERT_TRUE(back.ok());
   ASSERT_EQ(back->channels(), 1);

@@ -123,7 +123,8 @@ TEST(IntegrationTest, PerspectiveSphereInMetres) {
   double max_err = 0;
   for (int v = 0; v < size; ++v)
     for (int u = 0; u < size; ++u)
-      if (mask.at<uint8_t>(v, u)) max_err = std::max(max_err, double(std::abs(d.depth.at<float>(v, u) - truth.at<float>(v, u))));
+      if (mask.at<uint8_t>(v, u))
+        max_err = std::max(max_err, double(std::abs(d.depth.at<float>(v, u) - truth.at<float>(v, u))));
   std::printf("perspective sphere max depth error %.3f mm\n", max_err * 1e3);
   // Stated tolerance: 1 mm on a 0.1 m sphere at 0.8 m (1% of its radius;
   // common practice).

@@ -21,9 +21,7 @@ namespace fs = std::filesystem;
 using nlohmann::json;
 constexpr double kPi = 3.14159265358979323846;
 
-void WriteJson(const std::string& path, const json& j) {
-  std::ofstream(path) << j.dump(2);
-}
+void WriteJson(const std::string& path, const json& j) { std::ofstream(path) << j.dump(2); }
 
 std::vector<Eigen::Vector3d> FrontDome(int count, double min_elevation_deg) {
   std::vector<Eigen::Vector3d> dirs;
@@ -69,14 +67,17 @@ SphereSession WriteSphereSession(const std::string& dir, int size, const std::ve
     }
   const double black = 0.01, dark = 0.02;
   json rig = {{"format", "lumenrig.rig/1"}, {"name", "test-dome"}, {"lights", json::array()}};
-  json cam = {{"id", "cam00"}, {"olat", json::array()}, {"dark", "cam00/dark.exr"},
+  json cam = {{"id", "cam00"},
+              {"olat", json::array()},
+              {"dark", "cam00/dark.exr"},
               {"camera_from_rig", {{1, 0, 0, 0}, {0, 1, 0, 0}, {0, 0, 1, -1.5}, {0, 0, 0, 1}}}};
   fs::create_directories(dir + "/cam00");
   io::ExrWriteOptions eo;
   eo.pixel_type = io::PixelType::kFloat;
   for (size_t i = 0; i < dirs.size(); ++i) {
     const Eigen::Vector3d inten(1.0 + 0.1 * (i % 3), 0.9, 1.1 - 0.05 * (i % 4));
-    rig["lights"].push_back({{"id", int(i)}, {"direction", {dirs[i].x(), dirs[i].y(), dirs[i].z()}},
+    rig["lights"].push_back({{"id", int(i)},
+                             {"direction", {dirs[i].x(), dirs[i].y(), dirs[i].z()}},
                              {"intensity", {inten.x(), inten.y(), inten.z()}}});
     cv::Mat f(size, size, CV_32FC3, cv::Scalar::all(black + dark));
     for (int v = 0; v < size; ++v)
@@ -89,14 +90,18 @@ SphereSession WriteSphereSession(const std::string& dir, int size, const std::ve
     EXPECT_TRUE(io::WriteExr(dir + "/" + rel, f, eo).ok());
     cam["olat"].push_back({{"light", int(i)}, {"path", rel}});
   }
-  EXPECT_TRUE(io::WriteExr(dir + "/cam00/dark.exr", cv::Mat(size, size, CV_32FC3, cv::Scalar::all(black + dark)), eo).ok());
+  EXPECT_TRUE(
+      io::WriteExr(dir + "/cam00/dark.exr", cv::Mat(size, size, CV_32FC3, cv::Scalar::all(black + dark)), eo).ok());
   if (with_mask) {
     EXPECT_TRUE(io::WritePng(dir + "/cam00/mask.png", s.mask).ok());
     cam["mask"] = "cam00/mask.png";
   }
   WriteJson(dir + "/rig.json", rig);
-  WriteJson(dir + "/session.json", {{"format", "lumenrig.session/1"}, {"subject", "test-sphere"}, {"rig", "rig.json"},
-                                    {"black_level", black}, {"cameras", {cam}}});
+  WriteJson(dir + "/session.json", {{"format", "lumenrig.session/1"},
+                                    {"subject", "test-sphere"},
+                                    {"rig", "rig.json"},
+                                    {"black_level", black},
+                                    {"cameras", {cam}}});
   return s;
 }
 
@@ -108,8 +113,8 @@ TEST(NormalsStageTest, SphereSessionInBandsMatchesClosedFormAndIsThreadIndepende
   ASSERT_TRUE(session.ok()) << session.status().message();
   NormalsOptions o;
   // Budget for a handful of 16-row bands (ZIP EXR blocks are 16 lines).
-  o.mem_budget_bytes = (64ll << 20) + 128 * 128 * 29 + 128 * 160 * 128 + 40 * (4 * 16 * 128 * 3 * 2 + 65536) +
-                       41 * 128 * 3 * 4 * 32;
+  o.mem_budget_bytes =
+      (64ll << 20) + 128 * 128 * 29 + 128 * 160 * 128 + 40 * (4 * 16 * 128 * 3 * 2 + 65536) + 41 * 128 * 3 * 4 * 32;
   NormalsResult r1, r2;
   ASSERT_TRUE(SolveNormals(*session, "", o, &r1, 1).ok());
   ASSERT_TRUE(SolveNormals(*session, "cam00", o, &r2, 2).ok());
@@ -259,7 +264,9 @@ void WriteNearFieldSession(const std::string& dir, bool with_intrinsics, cv::Mat
     }
   fs::create_directories(dir + "/cam00");
   json rig = {{"format", "lumenrig.rig/1"}, {"lights", json::array()}};
-  json cam = {{"id", "cam00"}, {"olat", json::array()}, {"mask", "cam00/mask.png"},
+  json cam = {{"id", "cam00"},
+              {"olat", json::array()},
+              {"mask", "cam00/mask.png"},
               {"camera_from_rig", {{1, 0, 0, 0}, {0, 1, 0, 0}, {0, 0, 1, -1.5}, {0, 0, 0, 1}}}};
   if (with_intrinsics) cam["intrinsics"] = {{"fx", k.fx}, {"fy", k.fy}, {"cx", k.cx}, {"cy", k.cy}};
   io::ExrWriteOptions eo;
@@ -322,7 +329,7 @@ TEST(NormalsStageTest, NearFieldWithoutIntrinsicsNamesTheKey) {
 /// DiLiGenT paper's baseline table. Recalled from memory, not re-read (the
 /// data README says the same for ball: 4.10).
 const std::map<std::string, double> kDiligentLeastSquaresDeg = {
-    {"ball", 4.10}, {"cat", 8.41}, {"pot1", 8.89}, {"bear", 8.39}, {"pot2", 14.65},
+    {"ball", 4.10},    {"cat", 8.41},     {"pot1", 8.89},     {"bear", 8.39}, {"pot2", 14.65},
     {"buddha", 14.92}, {"goblet", 18.50}, {"reading", 19.80}, {"cow", 25.60}, {"harvest", 30.62}};
 
 std::vector<std::vector<double>> ReadRows(const std::string& path) {
@@ -348,16 +355,17 @@ bool ConvertDiligent(const std::string& object_dir, const std::string& dir) {
   json cam = {{"id", "cam00"}, {"olat", json::array()}, {"mask", "cam00/mask.png"}};
   for (size_t i = 0; i < names.size(); ++i) {
     const auto& d = directions[i];
-    rig["lights"].push_back(
-        {{"id", int(i)}, {"direction", {d[0], d[1], d[2]}}, {"intensity", intensities[i]}});
+    rig["lights"].push_back({{"id", int(i)}, {"direction", {d[0], d[1], d[2]}}, {"intensity", intensities[i]}});
     const std::string rel = "cam00/" + names[i];
     fs::create_symlink(object_dir + "/" + names[i], dir + "/" + rel);
     cam["olat"].push_back({{"light", int(i)}, {"path", rel}});
   }
   fs::create_symlink(object_dir + "/mask.png", dir + "/cam00/mask.png");
   WriteJson(dir + "/rig.json", rig);
-  WriteJson(dir + "/session.json", {{"format", "lumenrig.session/1"}, {"subject", fs::path(object_dir).filename().string()},
-                                    {"rig", "rig.json"}, {"cameras", {cam}}});
+  WriteJson(dir + "/session.json", {{"format", "lumenrig.session/1"},
+                                    {"subject", fs::path(object_dir).filename().string()},
+                                    {"rig", "rig.json"},
+                                    {"cameras", {cam}}});
   return true;
 }
 

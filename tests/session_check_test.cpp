@@ -355,7 +355,8 @@ TEST(SessionCheck, ThresholdsParseValidateAndAreDocumented) {
   ss << doc.rdbuf();
   const CheckOptions defaults;
   for (const auto& spec : ThresholdTable()) {
-    EXPECT_NE(ss.str().find(std::string("`") + spec.key + "`"), std::string::npos) << spec.key << " not in docs/check.md";
+    EXPECT_NE(ss.str().find(std::string("`") + spec.key + "`"), std::string::npos)
+        << spec.key << " not in docs/check.md";
     EXPECT_NE(ss.str().find(check_detail::Num(defaults.*spec.field, 4)), std::string::npos) << spec.key;
   }
 }
@@ -459,12 +460,14 @@ TEST(SessionCheck, ReportRendersInHeadlessChromium) {
   }
   const std::string probe =
       "<script>window.__errs=[];window.onerror=function(m){window.__errs.push('JSERROR '+m)};"
-      "var ce=console.error;console.error=function(m){window.__errs.push('CONSOLEERROR '+m);ce.apply(console,arguments)};"
+      "var ce=console.error;console.error=function(m){window.__errs.push('CONSOLEERROR "
+      "'+m);ce.apply(console,arguments)};"
       "window.addEventListener('error',function(e){if(e.target&&e.target.tagName)window.__errs.push('RESOURCEERROR '+"
       "e.target.tagName)},true);"
       "window.addEventListener('load',function(){var im=document.images;for(var i=0;i<im.length;i++)"
       "if(!im[i].complete||im[i].naturalWidth==0)window.__errs.push('IMGERROR '+i);"
-      "var d=document.createElement('pre');d.id='probe';d.textContent='PROBE_DONE '+im.length+' '+window.__errs.join('|');"
+      "var d=document.createElement('pre');d.id='probe';d.textContent='PROBE_DONE '+im.length+' "
+      "'+window.__errs.join('|');"
       "document.body.appendChild(d)});</script>";
   const std::string probed_path = tmp / "report/probed.html";
   {
@@ -472,9 +475,10 @@ TEST(SessionCheck, ReportRendersInHeadlessChromium) {
     p.insert(p.find("<head>") + 6, probe);
     std::ofstream(probed_path) << p;
   }
-  const std::string flags = "--headless --no-sandbox --disable-gpu --no-first-run --disable-background-networking "
-                            "--disable-component-update --disable-sync --enable-logging=stderr --v=0 "
-                            "--virtual-time-budget=5000 --user-data-dir=";
+  const std::string flags =
+      "--headless --no-sandbox --disable-gpu --no-first-run --disable-background-networking "
+      "--disable-component-update --disable-sync --enable-logging=stderr --v=0 "
+      "--virtual-time-budget=5000 --user-data-dir=";
   auto dom = test::RunShell(chromium + " " + flags + tmp / "profile1" + " --dump-dom file://" + probed_path);
   ASSERT_EQ(dom.exit_code, 0) << dom.err;
   EXPECT_NE(dom.out.find("PROBE_DONE 40 </pre>"), std::string::npos)
@@ -496,7 +500,8 @@ TEST(SessionCheck, ReportRendersInHeadlessChromium) {
   const cv::Vec3b top = img.at<cv::Vec3b>(10, 640);
   EXPECT_GT(top[2], 150);
   EXPECT_LT(top[1], 60);
-  if (const char* keep = std::getenv("LUMENRIG_CHECK_SCREENSHOT")) fs::copy_file(png, keep, fs::copy_options::overwrite_existing);
+  if (const char* keep = std::getenv("LUMENRIG_CHECK_SCREENSHOT"))
+    fs::copy_file(png, keep, fs::copy_options::overwrite_existing);
 }
 
 }  // namespace

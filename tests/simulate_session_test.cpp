@@ -268,7 +268,8 @@ TEST(SimulateSessionFaults, MotionShowsInTrackingFrames) {
   int best_shift = -100;
   for (int s = -10; s <= 10; ++s) {
     const int w = o.width - 20;
-    const double err = cv::norm(clean(cv::Rect(10, 0, w, o.height)), moved(cv::Rect(10 + s, 0, w, o.height)), cv::NORM_L2);
+    const double err =
+        cv::norm(clean(cv::Rect(10, 0, w, o.height)), moved(cv::Rect(10 + s, 0, w, o.height)), cv::NORM_L2);
     if (err < best_err) {
       best_err = err;
       best_shift = s;

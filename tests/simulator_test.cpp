@@ -97,7 +97,8 @@ void ExpectClosedForm(SimOptions o) {
       const cv::Vec3f got = sim->olat[k].at<cv::Vec3f>(px.y, px.x);
       for (int c = 0; c < 3; ++c) {
         const double expected = kGreySphereAlbedo / M_PI * light.intensity[c] * cosine * inv_d2;
-        ASSERT_NEAR(got[c], expected, 2e-6) << "light " << light.id << " pixel (" << px.x << "," << px.y << ") channel " << c;
+        ASSERT_NEAR(got[c], expected, 2e-6)
+            << "light " << light.id << " pixel (" << px.x << "," << px.y << ") channel " << c;
       }
     }
   }
@@ -228,11 +229,13 @@ TEST(SimulatorShading, FullyLitFrameIsTheSumOfSingleLightFrames) {
   EXPECT_GT(cv::norm(together, cv::NORM_INF), 0.1);
   // Composite scales a render and adds the backdrop behind fractional alpha.
   const cv::Mat lit = view.Composite(view.Render(all, Backdrop::kBlack, true, 2), 2.0, Backdrop::kMatteA);
-  const cv::Mat direct = view.Render([&] {
-    std::vector<LitLight> twice = all;
-    for (auto& l : twice) l.gain = 1.0;
-    return twice;
-  }(), Backdrop::kMatteA, true, 2);
+  const cv::Mat direct = view.Render(
+      [&] {
+        std::vector<LitLight> twice = all;
+        for (auto& l : twice) l.gain = 1.0;
+        return twice;
+      }(),
+      Backdrop::kMatteA, true, 2);
   EXPECT_LE(cv::norm(lit, direct, cv::NORM_INF), 1e-5);
 }
 

@@ -1,5 +1,7 @@
 #include "test_support.h"
 
+#include <sys/wait.h>
+#include <unistd.h>
 #include <array>
 #include <cstdio>
 #include <cstdlib>
@@ -7,8 +9,6 @@
 #include <fstream>
 #include <random>
 #include <sstream>
-#include <sys/wait.h>
-#include <unistd.h>
 
 namespace fs = std::filesystem;
 
@@ -17,8 +17,7 @@ namespace lumenrig::test {
 TempDir::TempDir() {
   std::random_device rd;
   for (int attempt = 0; attempt < 100; ++attempt) {
-    fs::path p = fs::temp_directory_path() /
-                 ("lumenrig-test-" + std::to_string(getpid()) + "-" + std::to_string(rd()));
+    fs::path p = fs::temp_directory_path() / ("lumenrig-test-" + std::to_string(getpid()) + "-" + std::to_string(rd()));
     std::error_code ec;
     if (fs::create_directory(p, ec)) {
       path_ = p.string();

@@ -52,7 +52,7 @@ class [[nodiscard]] Status {
 template <class T>
 class [[nodiscard]] Expected {
  public:
-  Expected(T value) : value_(std::move(value)) {}  // NOLINT: implicit by design
+  Expected(T value) : value_(std::move(value)) {}          // NOLINT: implicit by design
   Expected(Status status) : status_(std::move(status)) {}  // NOLINT
   bool ok() const { return value_.has_value(); }
   const Status& status() const { return status_; }
@@ -72,8 +72,8 @@ class [[nodiscard]] Expected {
 }  // namespace lumenrig::io
 
 /// Propagates a non-OK Status from the enclosing function.
-#define LUMENRIG_RETURN_IF_ERROR(expr)               \
-  do {                                               \
-    ::lumenrig::io::Status lumenrig_status_ = (expr); \
+#define LUMENRIG_RETURN_IF_ERROR(expr)                   \
+  do {                                                   \
+    ::lumenrig::io::Status lumenrig_status_ = (expr);    \
     if (!lumenrig_status_.ok()) return lumenrig_status_; \
   } while (0)

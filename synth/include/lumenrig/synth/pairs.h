@@ -100,7 +100,8 @@ nlohmann::json PairsConfigJson(const PairsOptions& options);
 io::Status WritePairs(const PairsOptions& options, PairsSummary* summary = nullptr);
 
 /// Columns of the contact sheet, left to right.
-inline constexpr const char* kPairsPreviewColumns[] = {"input", "target", "albedo", "normals", "alpha", "light_diffuse"};
+inline constexpr const char* kPairsPreviewColumns[] = {"input",   "target", "albedo",
+                                                       "normals", "alpha",  "light_diffuse"};
 
 /// A contact sheet (8-bit BGR) of up to `max_samples` samples spread over a
 /// pairs file: one row per sample, one 128-px-high tile per column.

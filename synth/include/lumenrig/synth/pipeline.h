@@ -45,9 +45,9 @@ struct RunOptions {
   nlohmann::json normals_options = nlohmann::json::object();
   nlohmann::json matte_options = nlohmann::json::object();
   nlohmann::json pairs_options = nlohmann::json::object();
-  int threads = 0;                           ///< 0 = all cores
+  int threads = 0;                              ///< 0 = all cores
   int64_t mem_budget_bytes = int64_t{4} << 30;  ///< shared by every unit in flight
-  bool force = false;                        ///< run later stages despite a QA FAIL
+  bool force = false;                           ///< run later stages despite a QA FAIL
   /// Sharding across processes (MPI ranks): this process takes the sessions
   /// whose position in `sessions` is shard_index modulo shard_count.
   int shard_index = 0;
@@ -66,10 +66,10 @@ struct UnitPlan {
   UnitState state = UnitState::kMissing;
   std::string reason;  ///< why it runs, e.g. "options changed: method"
   uint64_t key = 0;
-  uint64_t inputs_hash = 0;     ///< combined content hash of the unit's input files
-  uint64_t upstream_hash = 0;   ///< combined keys of the units it derives from
+  uint64_t inputs_hash = 0;      ///< combined content hash of the unit's input files
+  uint64_t upstream_hash = 0;    ///< combined keys of the units it derives from
   nlohmann::json options_slice;  ///< the options that affect its outputs
-  std::vector<int> depends_on;  ///< indices into RunPlan::units
+  std::vector<int> depends_on;   ///< indices into RunPlan::units
 };
 
 struct RunPlan {
@@ -84,8 +84,8 @@ struct StageStats {
   StageKind stage = StageKind::kCheck;
   int units_run = 0;
   int units_skipped = 0;
-  double wall_s = 0;  ///< summed over the stage's units
-  double cpu_s = 0;   ///< process CPU time while the stage's units ran
+  double wall_s = 0;           ///< summed over the stage's units
+  double cpu_s = 0;            ///< process CPU time while the stage's units ran
   int64_t peak_rss_bytes = 0;  ///< process peak RSS when the stage's last unit ended
 };
 

@@ -25,20 +25,20 @@ enum class Material { kPlaster, kGreySphere, kHair };
 struct Primitive {
   enum class Kind { kEllipsoid, kCylinderY };
   Kind kind = Kind::kEllipsoid;
-  Eigen::Vector3d centre = Eigen::Vector3d::Zero();  ///< cylinder: x,z of the axis
-  Eigen::Vector3d radii = Eigen::Vector3d::Ones();   ///< cylinder: radii.x() is the radius
+  Eigen::Vector3d centre = Eigen::Vector3d::Zero();     ///< cylinder: x,z of the axis
+  Eigen::Vector3d radii = Eigen::Vector3d::Ones();      ///< cylinder: radii.x() is the radius
   Eigen::Vector3d inv_radii = Eigen::Vector3d::Ones();  ///< 1 / radii (set by the scene)
-  double y_min = 0, y_max = 0;                       ///< cylinder extent in y
+  double y_min = 0, y_max = 0;                          ///< cylinder extent in y
   Material material = Material::kPlaster;
 };
 
 /// A ray hit on a solid surface.
 struct SurfaceHit {
-  double t = 0;                    ///< ray parameter (ray direction is unit: metres)
-  Eigen::Vector3d position;        ///< rig frame, metres
-  Eigen::Vector3d normal;          ///< unit outward normal, rig frame
+  double t = 0;              ///< ray parameter (ray direction is unit: metres)
+  Eigen::Vector3d position;  ///< rig frame, metres
+  Eigen::Vector3d normal;    ///< unit outward normal, rig frame
   Material material = Material::kPlaster;
-  int primitive = -1;              ///< index into Scene::primitives()
+  int primitive = -1;  ///< index into Scene::primitives()
 };
 
 /// A ray crossing the hair shell: coverage in [0, 1) and the shell point.

@@ -175,10 +175,10 @@ class CameraView {
   SimOptions options_;
   Scene scene_;
   Eigen::Matrix3d camera_from_rig_r_;
-  Eigen::Vector3d centre_rig_;          // camera centre
+  Eigen::Vector3d centre_rig_;                // camera centre
   std::vector<Eigen::Vector3f> backdrop_xy_;  // per pixel backdrop plane (x, y, unused)
-  std::vector<float> alpha_;             // per pixel coverage, <= 1
-  std::vector<int> offsets_;            // samples of pixel i: [offsets_[i], offsets_[i+1])
+  std::vector<float> alpha_;                  // per pixel coverage, <= 1
+  std::vector<int> offsets_;                  // samples of pixel i: [offsets_[i], offsets_[i+1])
   std::vector<Sample> samples_;
 };
 
