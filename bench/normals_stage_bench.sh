@@ -28,9 +28,11 @@ for method in lsq robust; do
           --threads "$threads" --force)
     echo "$log" | tail -3
     wall=$(echo "$log" | sed -n 's/^normals: wall \([0-9.]*\) s.*/\1/p')
-    rcpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s/\1/p')
-    scpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s/\2/p')
+    rcpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s.*/\1/p')
+    scpu=$(echo "$log" | sed -n 's/^cpu time: read \([0-9.]*\) s, solve \([0-9.]*\) s.*/\2/p')
+    tcpu=$(echo "$log" | sed -n 's/^cpu time: .*, stage \([0-9.]*\) s$/\1/p')
     echo "  -> $method, budget $budget: whole stage wall / decode wall = $(echo "$wall / $decode" | bc -l | cut -c1-5);" \
+         "whole stage cpu / decode cpu = $(echo "$tcpu / $decode_cpu" | bc -l | cut -c1-5);" \
          "(read + solve) cpu / decode cpu = $(echo "($rcpu + $scpu) / $decode_cpu" | bc -l | cut -c1-5)"
   done
 done

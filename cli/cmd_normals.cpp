@@ -3,6 +3,7 @@
 #include <chrono>
 #include <cstdio>
 #include <filesystem>
+#include <ctime>
 #include <sys/resource.h>
 
 #include <fmt/format.h>
@@ -32,8 +33,16 @@ double PeakRssMib() {
   return usage.ru_maxrss / 1024.0;  // ru_maxrss is in KiB on Linux
 }
 
+/// CPU time of the whole process (all threads), seconds.
+double ProcessCpuSeconds() {
+  timespec ts{};
+  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
+}
+
 int RunNormals(const NormalsArgs& a) {
   const auto start = std::chrono::steady_clock::now();
+  const double start_cpu = ProcessCpuSeconds();
   const char* name = "normals";
   auto method = solvers::ParsePsMethod(a.method);
   if (!method.ok()) return ReportError(name, method.status());
@@ -75,7 +84,10 @@ int RunNormals(const NormalsArgs& a) {
                                : "",
              write_s);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
-  fmt::print("cpu time: read {:.2f} s, solve {:.2f} s\n", result.read_cpu_seconds, result.solve_cpu_seconds);
+  const double stage_cpu = ProcessCpuSeconds() - start_cpu;
+  fmt::print("cpu time: read {:.2f} s, solve {:.2f} s, depth, write and the rest {:.2f} s, stage {:.2f} s\n",
+             result.read_cpu_seconds, result.solve_cpu_seconds,
+             stage_cpu - result.read_cpu_seconds - result.solve_cpu_seconds, stage_cpu);
   fmt::print("normals: wall {:.2f} s, peak RSS {:.0f} MiB\n", wall, PeakRssMib());
   return 0;
 }

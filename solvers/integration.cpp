@@ -8,6 +8,8 @@
 #include <fmt/format.h>
 #include <opencv2/core.hpp>
 
+#include "lumenrig/capture_io/parallel.h"
+
 namespace lumenrig::solvers {
 namespace {
 
@@ -58,7 +60,7 @@ Field MakeField(const cv::Mat& normals, const cv::Mat& mask, const IntegrationOp
 
 /// Frankot-Chellappa on the even extension: p is odd under the u-mirror and
 /// even under the v-mirror, q the reverse, so the 2H x 2W field is periodic.
-cv::Mat FrankotChellappa(const Field& f) {
+cv::Mat FrankotChellappa(const Field& f, int threads) {
   const int h = f.p.rows, w = f.p.cols;
   const int eh = 2 * h, ew = 2 * w;
   cv::Mat pe(eh, ew, CV_32F), qe(eh, ew, CV_32F);
@@ -76,11 +78,16 @@ cv::Mat FrankotChellappa(const Field& f) {
       qo[u] = sign_v * q[su];
     }
   }
+  // The two forward transforms are independent (same result whichever runs
+  // where); each job releases its input as soon as it is transformed.
   cv::Mat pf, qf;
-  cv::dft(pe, pf, cv::DFT_COMPLEX_OUTPUT);
-  pe.release();
-  cv::dft(qe, qf, cv::DFT_COMPLEX_OUTPUT);
-  qe.release();
+  io::ParallelFor(0, 2, 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) {
+      cv::Mat& in = j == 0 ? pe : qe;
+      cv::dft(in, j == 0 ? pf : qf, cv::DFT_COMPLEX_OUTPUT);
+      in.release();
+    }
+  });
   // F = (-i wu P - i wv Q) / (wu^2 + wv^2), F(0) = 0 (mean fixed later).
   for (int v = 0; v < eh; ++v) {
     const double wv = 2.0 * M_PI * (v <= eh / 2 ? v : v - eh) / eh;
@@ -170,7 +177,7 @@ cv::Mat Poisson(const Field& f, const IntegrationOptions& o, std::string* method
 }  // namespace
 
 io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const IntegrationOptions& options,
-                            DepthMap* out) {
+                            DepthMap* out, int threads) {
   if (normals.empty() || normals.type() != CV_32FC3)
     return io::Status::Internal("IntegrateNormals: normals must be a non-empty CV_32FC3 image");
   if (!mask.empty() && (mask.type() != CV_8U || mask.size() != normals.size()))
@@ -188,7 +195,7 @@ io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const I
   if (method == IntegrationMethod::kPoisson) {
     z = Poisson(field, options, &out->method);
   } else {
-    z = FrankotChellappa(field);
+    z = FrankotChellappa(field, threads);
     out->method = "frankot-chellappa";
   }
   // Fix the free constant: zero mean (pixels) / geometric mean = reference (metres).

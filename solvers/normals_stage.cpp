@@ -8,8 +8,10 @@
 #include <filesystem>
 #include <functional>
 #include <memory>
+#include <new>
 
 #include <fmt/format.h>
+#include <ImfThreading.h>
 #include <opencv2/imgproc.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
@@ -255,7 +257,10 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   out->all_zero_lights.clear();
 
   const int64_t slot = rows * width * channels;
-  std::vector<float> band(static_cast<size_t>(slot * n));
+  // Left uninitialised: every element the solve reads is written by a band
+  // reader first, and zero-filling a multi-GiB stack is a pass over memory.
+  std::unique_ptr<float[]> band(new (std::nothrow) float[static_cast<size_t>(slot * n)]);
+  if (!band) return io::Status::Internal(fmt::format("cannot allocate the {} band buffer", Mib(slot * n * 4)));
   cv::Mat dark_band;
   std::vector<float> frame_max(static_cast<size_t>(n), 0.0f);
   const int nthreads = io::ResolveThreads(threads);
@@ -281,7 +286,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
             const auto& frame = cam.olat[static_cast<size_t>(i)];
-            float* dst = band.data() + i * slot;
+            float* dst = band.get() + i * slot;
             cv::Mat view(band_rows, width, CV_MAKETYPE(CV_32F, channels), dst);
             io::Status s;
             if (keep_open) {
@@ -320,7 +325,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
         BlockInput in;
-        in.data = band.data() + b * channels;
+        in.data = band.get() + b * channels;
         in.light_stride = slot;
         in.pixels = e - b;
         in.channels = channels;
@@ -358,14 +363,13 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     io_opts.intrinsics = cam.intrinsics;
     io_opts.reference_depth_m = reference_depth_m;
     DepthMap depth;
-    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth));
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth, nthreads));
     PointsFromDepth(depth.depth, cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
     out->normals.copyTo(previous_normals);
     out->confidence.copyTo(previous_confidence);
     out->integrate_seconds += Seconds(t2, Clock::now());
   }
-  band.clear();
-  band.shrink_to_fit();
+  band.reset();
   readers.clear();
   points.release();
   previous_normals.release();
@@ -378,7 +382,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       io_opts.intrinsics = cam.intrinsics;
       io_opts.reference_depth_m = reference_depth_m;
     }
-    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &out->depth));
+    LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &out->depth, nthreads));
     out->integrate_seconds += Seconds(t3, Clock::now());
   }
   return io::Status::Ok();
@@ -471,10 +475,17 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
     });
   }
   jobs.push_back([&] { return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite); });
+  // OpenEXR compresses the line blocks of each file on its own pool too, so
+  // the two large RGB files do not leave a core idle at the end; the bytes
+  // written do not depend on it. Restored afterwards (process-wide setting).
+  const int exr_threads_before = Imf::globalThreadCount();
+  const int exr_threads = io::ResolveThreads(threads);
+  if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads);
   std::vector<io::Status> status(jobs.size());
   io::ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = jobs[static_cast<size_t>(j)]();
   });
+  if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads_before);
   for (const auto& st : status) {
     if (st.ok()) continue;
     // No partial output: remove what this call wrote.

@@ -55,7 +55,9 @@ struct DepthMap {
 /// Integrates `normals` (CV_32FC3) over `mask` (CV_8U, non-zero = valid; empty
 /// = all). Pixels whose normal is zero or non-finite are invalid too. Errors:
 /// wrong types or sizes, intrinsics with a non-positive focal length.
+/// `threads` (0 = all) runs the two forward transforms of Frankot-Chellappa
+/// concurrently; the result does not depend on it.
 io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const IntegrationOptions& options,
-                            DepthMap* out);
+                            DepthMap* out, int threads = 0);
 
 }  // namespace lumenrig::solvers
