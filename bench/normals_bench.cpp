@@ -13,10 +13,10 @@
 //                                          the wall time
 #include <atomic>
 #include <chrono>
-#include <ctime>
 #include <cmath>
 #include <cstdio>
 #include <cstring>
+#include <ctime>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -99,8 +99,8 @@ void BM_PlainGemm(benchmark::State& state) {
   const int threads = static_cast<int>(state.range(1));
   const Eigen::MatrixXf p = Eigen::MatrixXf::Random(3, s.lights);
   std::vector<Eigen::MatrixXf> out(static_cast<size_t>(threads), Eigen::MatrixXf(3, kTile * 3));
-  using Map = Eigen::Map<const Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>, 0,
-                         Eigen::OuterStride<>>;
+  using Map =
+      Eigen::Map<const Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>, 0, Eigen::OuterStride<>>;
   for (auto _ : state) {
     io::ParallelFor(0, s.pixels, kTile, threads, [&](int64_t b, int64_t e) {
       Map stack(s.data.data() + b * 3, s.lights, (e - b) * 3, Eigen::OuterStride<>(s.pixels * 3));
@@ -169,15 +169,19 @@ class RatioReporter : public benchmark::ConsoleReporter {
         const double gemm = times_["BM_PlainGemm" + suffix], lsq = times_["BM_LeastSquares" + suffix],
                      rob = times_["BM_Robust" + suffix];
         if (gemm > 0 && lsq > 0 && rob > 0)
-          std::printf("  %3d lights, %d thread(s), wall: least squares throughput = %.0f%% of plain GEMM; robust / least squares = %.2fx\n",
-                      lights, threads, 100.0 * gemm / lsq, rob / lsq);
+          std::printf(
+              "  %3d lights, %d thread(s), wall: least squares throughput = %.0f%% of plain GEMM; robust / least "
+              "squares = %.2fx\n",
+              lights, threads, 100.0 * gemm / lsq, rob / lsq);
         // On one thread all work runs on the timing thread, so CPU time is
         // meaningful and robust against other processes sharing the cores.
         const double gc = cpu_["BM_PlainGemm" + suffix], lc = cpu_["BM_LeastSquares" + suffix],
                      rc = cpu_["BM_Robust" + suffix];
         if (threads == 1 && gc > 0 && lc > 0 && rc > 0)
-          std::printf("  %3d lights, 1 thread,    cpu:  least squares throughput = %.0f%% of plain GEMM; robust / least squares = %.2fx\n",
-                      lights, 100.0 * gc / lc, rc / lc);
+          std::printf(
+              "  %3d lights, 1 thread,    cpu:  least squares throughput = %.0f%% of plain GEMM; robust / least "
+              "squares = %.2fx\n",
+              lights, 100.0 * gc / lc, rc / lc);
       }
   }
 
@@ -197,11 +201,11 @@ int MakeSession(const std::string& dir, int size, int lights) {
     cam["olat"].push_back({{"light", i}, {"path", fmt::format("cam00/olat_{:03d}.exr", i)}});
   }
   std::ofstream(dir + "/rig.json") << rig.dump(1);
-  std::ofstream(dir + "/session.json") << nlohmann::json{{"format", "lumenrig.session/1"},
-                                                         {"subject", "bench-sphere"},
-                                                         {"rig", "rig.json"},
-                                                         {"cameras", {cam}}}
-                                              .dump(1);
+  std::ofstream(dir + "/session.json") << nlohmann::json{
+      {"format", "lumenrig.session/1"},
+      {"subject", "bench-sphere"},
+      {"rig", "rig.json"},
+      {"cameras", {cam}}}.dump(1);
   std::atomic<int> failures{0};
   io::ParallelFor(0, lights, 1, 0, [&](int64_t b, int64_t e) {
     for (int64_t i = b; i < e; ++i) {
@@ -210,7 +214,10 @@ int MakeSession(const std::string& dir, int size, int lights) {
       for (int v = 0; v < size; ++v)
         for (int u = 0; u < size; ++u) {
           const Eigen::Vector3d n = SceneNormal(u, v, size);
-          const double a = n.z() == 1.0 && (u - size / 2) * (u - size / 2) + (v - size / 2) * (v - size / 2) > 0.2 * size * size ? 0.3 : 0.6;
+          const double a =
+              n.z() == 1.0 && (u - size / 2) * (u - size / 2) + (v - size / 2) * (v - size / 2) > 0.2 * size * size
+                  ? 0.3
+                  : 0.6;
           const float shade = static_cast<float>(a / kPi * std::max(0.0, n.dot(l)));
           f.at<cv::Vec3f>(v, u) = cv::Vec3f(shade, 0.9f * shade, 0.8f * shade);
         }
@@ -248,8 +255,8 @@ int Decode(const std::string& dir, int threads, int rows) {
   const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &c1);
   const double cpu = (c1.tv_sec - c0.tv_sec) + 1e-9 * (c1.tv_nsec - c0.tv_nsec);
-  std::printf("decode: %zu frames, %d thread(s), %d-row bands: cpu %.2f s, wall %.2f s\n", frames.size(), threads,
-              rows, cpu, s);
+  std::printf("decode: %zu frames, %d thread(s), %d-row bands: cpu %.2f s, wall %.2f s\n", frames.size(), threads, rows,
+              cpu, s);
   return failures == 0 ? 0 : 1;
 }
 
@@ -258,7 +265,8 @@ int Decode(const std::string& dir, int threads, int rows) {
 int main(int argc, char** argv) {
   if (argc >= 5 && std::strcmp(argv[1], "--make-session") == 0)
     return MakeSession(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
-  if (argc >= 5 && std::strcmp(argv[1], "--decode") == 0) return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
+  if (argc >= 5 && std::strcmp(argv[1], "--decode") == 0)
+    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
   benchmark::Initialize(&argc, argv);
   RatioReporter reporter;
   benchmark::RunSpecifiedBenchmarks(&reporter);

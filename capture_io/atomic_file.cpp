@@ -1,13 +1,13 @@
 #include "lumenrig/capture_io/atomic_file.h"
 
+#include <fcntl.h>
+#include <unistd.h>
 #include <atomic>
 #include <cerrno>
 #include <cstdio>
 #include <cstring>
 #include <filesystem>
 #include <fstream>
-#include <fcntl.h>
-#include <unistd.h>
 
 namespace fs = std::filesystem;
 
@@ -35,8 +35,8 @@ Status AtomicFile::Commit() {
   ::fsync(fd);
   ::close(fd);
   if (std::rename(temp_path_.c_str(), final_path_.c_str()) != 0) {
-    return Status::BadInput(fmt::format("{}: cannot rename finished output into place: {}", final_path_,
-                                        std::strerror(errno)));
+    return Status::BadInput(
+        fmt::format("{}: cannot rename finished output into place: {}", final_path_, std::strerror(errno)));
   }
   committed_ = true;
   return Status::Ok();

@@ -173,7 +173,8 @@ class ExrBandReader : public BandReader {
     out->create(y1 - y0, info_.width, CV_MAKETYPE(CV_32F, c));
     const size_t x_stride = sizeof(float) * static_cast<size_t>(c);
     const size_t y_stride = x_stride * static_cast<size_t>(info_.width);
-    char* base = reinterpret_cast<char*>(out->ptr<float>(0)) - static_cast<ptrdiff_t>(min_x_) * static_cast<ptrdiff_t>(x_stride) -
+    char* base = reinterpret_cast<char*>(out->ptr<float>(0)) -
+                 static_cast<ptrdiff_t>(min_x_) * static_cast<ptrdiff_t>(x_stride) -
                  static_cast<ptrdiff_t>(min_y_ + y0) * static_cast<ptrdiff_t>(y_stride);
     Imf::FrameBuffer fb;
     for (int k = 0; k < c; ++k) {
@@ -206,9 +207,18 @@ class ExrBandReader : public BandReader {
 Expected<cv::Mat> ToLinearFloat(const cv::Mat& raw, const std::string& path, std::string* pixel_type) {
   cv::Mat f;
   switch (raw.depth()) {
-    case CV_8U: raw.convertTo(f, CV_32F, 1.0 / 255.0); *pixel_type = "uint8"; break;
-    case CV_16U: raw.convertTo(f, CV_32F, 1.0 / 65535.0); *pixel_type = "uint16"; break;
-    case CV_32F: f = raw; *pixel_type = "float"; break;
+    case CV_8U:
+      raw.convertTo(f, CV_32F, 1.0 / 255.0);
+      *pixel_type = "uint8";
+      break;
+    case CV_16U:
+      raw.convertTo(f, CV_32F, 1.0 / 65535.0);
+      *pixel_type = "uint16";
+      break;
+    case CV_32F:
+      f = raw;
+      *pixel_type = "float";
+      break;
     default:
       return Status::BadInput(fmt::format("{}: unsupported pixel depth (expected 8/16-bit integer or float)", path));
   }
@@ -231,7 +241,8 @@ class WholeImageBandReader : public BandReader {
                                                     const DecodeOptions& options) {
     cv::Mat raw = cv::imread(path, cv::IMREAD_UNCHANGED | cv::IMREAD_ANYDEPTH | cv::IMREAD_ANYCOLOR);
     if (raw.empty())
-      return Status::BadInput(fmt::format("{}: cannot decode as {} (corrupt, truncated or unsupported)", path, FormatName(format)));
+      return Status::BadInput(
+          fmt::format("{}: cannot decode as {} (corrupt, truncated or unsupported)", path, FormatName(format)));
     auto reader = std::unique_ptr<WholeImageBandReader>(new WholeImageBandReader());
     std::string pixel_type;
     auto image = ToLinearFloat(raw, path, &pixel_type);
@@ -279,7 +290,8 @@ Expected<std::unique_ptr<BandReader>> BandReader::Open(const std::string& path, 
     case FileFormat::kTiff: return OpenTiffBandReader(path, options);
     case FileFormat::kHdr: return WholeImageBandReader::Open(path, format, options);
     default:
-      return Status::BadInput(fmt::format("{}: unsupported image format (expected .exr, .png, .tif/.tiff or .hdr)", path));
+      return Status::BadInput(
+          fmt::format("{}: unsupported image format (expected .exr, .png, .tif/.tiff or .hdr)", path));
   }
 }
 
@@ -311,9 +323,12 @@ Status WriteExr(const std::string& path, const cv::Mat& image, const ExrWriteOpt
   const int c = image.channels();
   std::vector<std::string> names = options.channel_names;
   if (names.empty()) {
-    if (c == 3) names = {"R", "G", "B"};
-    else if (c == 1) names = {"Y"};
-    else return Status::Internal(fmt::format("{}: {} channels need explicit channel names", path, c));
+    if (c == 3)
+      names = {"R", "G", "B"};
+    else if (c == 1)
+      names = {"Y"};
+    else
+      return Status::Internal(fmt::format("{}: {} channels need explicit channel names", path, c));
   }
   if (static_cast<int>(names.size()) != c)
     return Status::Internal(fmt::format("{}: {} channel names for {} channels", path, names.size(), c));
@@ -337,7 +352,8 @@ Status WriteExr(const std::string& path, const cv::Mat& image, const ExrWriteOpt
     const size_t y_stride = x_stride * static_cast<size_t>(src.cols);
     char* base = reinterpret_cast<char*>(pixels.data);
     for (int k = 0; k < c; ++k)
-      fb.insert(names[static_cast<size_t>(k)], Imf::Slice(type, base + elem * static_cast<size_t>(k), x_stride, y_stride));
+      fb.insert(names[static_cast<size_t>(k)],
+                Imf::Slice(type, base + elem * static_cast<size_t>(k), x_stride, y_stride));
     Imf::OutputFile out(file.temp_path().c_str(), header);
     out.setFrameBuffer(fb);
     out.writePixels(src.rows);

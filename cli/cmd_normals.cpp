@@ -1,10 +1,10 @@
 // `lumenrig normals`: photometric stereo normals, albedo, confidence and
 // depth for one camera of a session (solvers/normals_stage.h).
+#include <sys/resource.h>
 #include <chrono>
 #include <cstdio>
-#include <filesystem>
 #include <ctime>
-#include <sys/resource.h>
+#include <filesystem>
 
 #include <fmt/format.h>
 
@@ -75,14 +75,16 @@ int RunNormals(const NormalsArgs& a) {
   const double write_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - write_start).count();
   for (const auto& file : solvers::NormalsOutputNames(result))
     fmt::print("{}\n", (std::filesystem::path(a.out) / file).string());
-  fmt::print("camera {}: {} lights, method {}, {} band(s) of {} rows, read {:.2f} s, solve {:.2f} s, depth {:.2f} s ({}{}), write {:.2f} s\n",
-             result.camera_id, result.lights, solvers::PsMethodName(result.method), result.bands, result.band_rows,
-             result.read_seconds, result.solve_seconds, result.integrate_seconds,
-             result.depth.depth.empty() ? "off" : result.depth.unit,
-             result.near_field ? fmt::format(", near-field {} iteration(s), last change {:.3f} deg",
-                                             result.near_field_iterations, result.near_field_change_deg)
-                               : "",
-             write_s);
+  fmt::print(
+      "camera {}: {} lights, method {}, {} band(s) of {} rows, read {:.2f} s, solve {:.2f} s, depth {:.2f} s ({}{}), "
+      "write {:.2f} s\n",
+      result.camera_id, result.lights, solvers::PsMethodName(result.method), result.bands, result.band_rows,
+      result.read_seconds, result.solve_seconds, result.integrate_seconds,
+      result.depth.depth.empty() ? "off" : result.depth.unit,
+      result.near_field ? fmt::format(", near-field {} iteration(s), last change {:.3f} deg",
+                                      result.near_field_iterations, result.near_field_change_deg)
+                        : "",
+      write_s);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
   const double stage_cpu = ProcessCpuSeconds() - start_cpu;
   fmt::print("cpu time: read {:.2f} s, solve {:.2f} s, depth, write and the rest {:.2f} s, stage {:.2f} s\n",
@@ -92,28 +94,27 @@ int RunNormals(const NormalsArgs& a) {
   return 0;
 }
 
-static CommandRegistrar reg({"normals", "Normals, albedo, confidence and depth by photometric stereo", 40,
-                             [](CLI::App* sub) -> std::function<int()> {
-                               auto args = std::make_shared<NormalsArgs>();
-                               sub->add_option("session", args->session, "Session folder or session.json")->required();
-                               sub->add_option("--out", args->out, "Output folder")->required();
-                               sub->add_option("--camera", args->camera, "Camera id (default: the first camera)");
-                               sub->add_option("--method", args->method,
-                                               "lsq (Woodham least squares) or robust (order statistics + Tukey IRLS)")
-                                   ->check(CLI::IsMember({"lsq", "robust"}))
-                                   ->capture_default_str();
-                               sub->add_option("--mem-budget", args->mem_budget,
-                                               "Peak memory budget: bytes or K/M/G/T suffix, e.g. 512M, 4G")
-                                   ->capture_default_str();
-                               sub->add_option("--threads", args->threads, "Worker threads (0 = all cores)")
-                                   ->capture_default_str();
-                               sub->add_option("--reference-depth", args->reference_depth_m,
-                                               "Subject distance in metres for metric depth (default: from "
-                                               "camera_from_rig)");
-                               sub->add_flag("--no-depth", args->no_depth, "Skip depth integration");
-                               sub->add_flag("--force", args->force, "Overwrite existing outputs");
-                               return [args] { return RunNormals(*args); };
-                             }});
+static CommandRegistrar reg(
+    {"normals", "Normals, albedo, confidence and depth by photometric stereo", 40,
+     [](CLI::App* sub) -> std::function<int()> {
+       auto args = std::make_shared<NormalsArgs>();
+       sub->add_option("session", args->session, "Session folder or session.json")->required();
+       sub->add_option("--out", args->out, "Output folder")->required();
+       sub->add_option("--camera", args->camera, "Camera id (default: the first camera)");
+       sub->add_option("--method", args->method,
+                       "lsq (Woodham least squares) or robust (order statistics + Tukey IRLS)")
+           ->check(CLI::IsMember({"lsq", "robust"}))
+           ->capture_default_str();
+       sub->add_option("--mem-budget", args->mem_budget, "Peak memory budget: bytes or K/M/G/T suffix, e.g. 512M, 4G")
+           ->capture_default_str();
+       sub->add_option("--threads", args->threads, "Worker threads (0 = all cores)")->capture_default_str();
+       sub->add_option("--reference-depth", args->reference_depth_m,
+                       "Subject distance in metres for metric depth (default: from "
+                       "camera_from_rig)");
+       sub->add_flag("--no-depth", args->no_depth, "Skip depth integration");
+       sub->add_flag("--force", args->force, "Overwrite existing outputs");
+       return [args] { return RunNormals(*args); };
+     }});
 
 }  // namespace
 }  // namespace lumenrig::cli

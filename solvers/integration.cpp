@@ -3,9 +3,9 @@
 #include <cmath>
 #include <vector>
 
+#include <fmt/format.h>
 #include <Eigen/IterativeLinearSolvers>
 #include <Eigen/SparseCholesky>
-#include <fmt/format.h>
 #include <opencv2/core.hpp>
 
 #include "lumenrig/capture_io/parallel.h"
@@ -15,8 +15,8 @@ namespace {
 
 /// Gradient field (p = df/du, q = df/dv) and validity of every pixel.
 struct Field {
-  cv::Mat p, q;     // CV_32F
-  cv::Mat valid;    // CV_8U 0/1
+  cv::Mat p, q;   // CV_32F
+  cv::Mat valid;  // CV_8U 0/1
   bool metric = false;
 };
 
@@ -189,7 +189,7 @@ io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const I
   IntegrationMethod method = options.method;
   if (method == IntegrationMethod::kAuto) {
     method = (!mask.empty() && cv::countNonZero(mask) < mask.rows * mask.cols) ? IntegrationMethod::kPoisson
-                                                                              : IntegrationMethod::kFrankotChellappa;
+                                                                               : IntegrationMethod::kFrankotChellappa;
   }
   cv::Mat z;
   if (method == IntegrationMethod::kPoisson) {

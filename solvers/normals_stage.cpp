@@ -3,15 +3,15 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
-#include <ctime>
 #include <cmath>
+#include <ctime>
 #include <filesystem>
 #include <functional>
 #include <memory>
 #include <new>
 
-#include <fmt/format.h>
 #include <ImfThreading.h>
+#include <fmt/format.h>
 #include <opencv2/imgproc.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
@@ -25,8 +25,8 @@ namespace {
 namespace fs = std::filesystem;
 using Clock = std::chrono::steady_clock;
 
-constexpr int64_t kTilePixels = 2048;           // pixels per solve task (fixed: output independent of threads)
-constexpr int64_t kBaselineBytes = 64ll << 20;  // libraries, code, allocator slack
+constexpr int64_t kTilePixels = 2048;               // pixels per solve task (fixed: output independent of threads)
+constexpr int64_t kBaselineBytes = 64ll << 20;      // libraries, code, allocator slack
 constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex) or Poisson
 
 double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::duration<double>(b - a).count(); }
@@ -49,8 +49,8 @@ void PointsFromDepth(const cv::Mat& depth, cv::Size size, const io::Intrinsics& 
     cv::Vec3f* p = points->ptr<cv::Vec3f>(v);
     for (int u = 0; u < size.width; ++u) {
       const double z = (d && d[u] > 0) ? d[u] : fallback_depth_m;
-      p[u] = cv::Vec3f(static_cast<float>(z * (u + 0.5 - k.cx) / k.fx), static_cast<float>(-z * (v + 0.5 - k.cy) / k.fy),
-                       static_cast<float>(-z));
+      p[u] = cv::Vec3f(static_cast<float>(z * (u + 0.5 - k.cx) / k.fx),
+                       static_cast<float>(-z * (v + 0.5 - k.cy) / k.fy), static_cast<float>(-z));
     }
   }
 }
@@ -96,11 +96,16 @@ io::Expected<int64_t> ParseByteSize(const std::string& text) {
   std::string unit = text.substr(pos);
   for (auto& c : unit) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
   double scale = 1;
-  if (unit.empty() || unit == "B") scale = 1;
-  else if (unit == "K" || unit == "KB" || unit == "KIB") scale = 1024.0;
-  else if (unit == "M" || unit == "MB" || unit == "MIB") scale = 1024.0 * 1024;
-  else if (unit == "G" || unit == "GB" || unit == "GIB") scale = 1024.0 * 1024 * 1024;
-  else if (unit == "T" || unit == "TB" || unit == "TIB") scale = 1024.0 * 1024 * 1024 * 1024;
+  if (unit.empty() || unit == "B")
+    scale = 1;
+  else if (unit == "K" || unit == "KB" || unit == "KIB")
+    scale = 1024.0;
+  else if (unit == "M" || unit == "MB" || unit == "MIB")
+    scale = 1024.0 * 1024;
+  else if (unit == "G" || unit == "GB" || unit == "GIB")
+    scale = 1024.0 * 1024 * 1024;
+  else if (unit == "T" || unit == "TB" || unit == "TIB")
+    scale = 1024.0 * 1024 * 1024 * 1024;
   else
     return io::Status::BadInput(fmt::format("--mem-budget: unknown unit '{}' in '{}' (use K, M, G or T)", unit, text));
   if (!(value > 0)) return io::Status::BadInput(fmt::format("--mem-budget: '{}' must be positive", text));
@@ -142,8 +147,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         "{}: lights: the lights of {} mix direction and position; the normals stage needs one kind", rig_where, key));
   const bool near = any_position;
   if (near && !cam.intrinsics)
-    return io::Status::BadInput(fmt::format(
-        "{}: {}.intrinsics: required for near-field lights (the rig gives light positions)", where, key));
+    return io::Status::BadInput(
+        fmt::format("{}: {}.intrinsics: required for near-field lights (the rig gives light positions)", where, key));
   double reference_depth_m = options.reference_depth_m;
   if (reference_depth_m <= 0 && cam.has_camera_from_rig)
     reference_depth_m = cam.camera_from_rig.block<3, 1>(0, 3).norm();
@@ -193,8 +198,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       const io::ImageInfo& fi = (*r)->info();
       if (fi.width != width || fi.height != height || fi.channels != channels)
         return io::Status::BadInput(fmt::format("{}: {}x{} with {} channel(s), but {} is {}x{} with {}",
-                                                cam.olat[static_cast<size_t>(i)].path, fi.width, fi.height,
-                                                fi.channels, cam.olat[0].path, width, height, channels));
+                                                cam.olat[static_cast<size_t>(i)].path, fi.width, fi.height, fi.channels,
+                                                cam.olat[0].path, width, height, channels));
       readers[static_cast<size_t>(i)] = std::move(r).value();
     }
   } else {
@@ -206,7 +211,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     auto m = io::ReadImage(cam.mask, {});
     if (!m.ok()) return m.status();
     if (m->cols != width || m->rows != height)
-      return io::Status::BadInput(fmt::format("{}: mask is {}x{}, frames are {}x{}", cam.mask, m->cols, m->rows, width, height));
+      return io::Status::BadInput(
+          fmt::format("{}: mask is {}x{}, frames are {}x{}", cam.mask, m->cols, m->rows, width, height));
     cv::Mat first_channel;
     cv::extractChannel(*m, first_channel, 0);
     mask = first_channel > 0.0f;
@@ -225,9 +231,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const int64_t px = static_cast<int64_t>(width) * height;
   const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0));
   const int64_t lpb = std::max(1, std::min(info.lines_per_block, height));
-  const int64_t reader_bytes =
-      keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
-                : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
+  const int64_t reader_bytes = keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
+                                         : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
   const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
   const int64_t integrate_bytes = options.integrate_depth ? fixed + px * kIntegrationBytesPerPixel : 0;
   // 10% of what is left is kept as slack for allocator and library overheads.
@@ -238,9 +243,9 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const int64_t min_rows = keep_open ? lpb : height;
   const int64_t needed = std::max(fixed + reader_bytes + min_rows * row_bytes, integrate_bytes);
   if (rows < min_rows || options.mem_budget_bytes < integrate_bytes)
-    return io::Status::BadInput(fmt::format(
-        "--mem-budget {}: too small for {} frames of {}x{} ({} channel(s)); this view needs at least {}",
-        Mib(options.mem_budget_bytes), n, width, height, channels, Mib(needed)));
+    return io::Status::BadInput(
+        fmt::format("--mem-budget {}: too small for {} frames of {}x{} ({} channel(s)); this view needs at least {}",
+                    Mib(options.mem_budget_bytes), n, width, height, channels, Mib(needed)));
   out->band_rows = static_cast<int>(rows);
   out->bands = static_cast<int>((height + rows - 1) / rows);
   out->planned_bytes = std::max(fixed + reader_bytes + rows * row_bytes, integrate_bytes);
@@ -343,12 +348,14 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     if (iter == 0) {
       bool all_zero = true;
       for (int i = 0; i < n; ++i) {
-        if (frame_max[static_cast<size_t>(i)] > 0) all_zero = false;
-        else out->all_zero_lights.push_back(cam.olat[static_cast<size_t>(i)].light);
+        if (frame_max[static_cast<size_t>(i)] > 0)
+          all_zero = false;
+        else
+          out->all_zero_lights.push_back(cam.olat[static_cast<size_t>(i)].light);
       }
       if (all_zero)
-        return io::Status::BadInput(fmt::format(
-            "{}: {}.olat: every frame is zero after black-level and dark-frame subtraction", where, key));
+        return io::Status::BadInput(
+            fmt::format("{}: {}.olat: every frame is zero after black-level and dark-frame subtraction", where, key));
     }
     if (!near) break;
     // 3. Near-field: depth from the normals, new surface points, repeat.
@@ -430,7 +437,8 @@ cv::Mat NormalsPreview(const NormalsResult& r) {
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
                                const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
   const auto names = NormalsOutputNames(result);
-  for (const auto& name : names) LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
+  for (const auto& name : names)
+    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
   io::ExrWriteOptions o;
   o.pixel_type = io::PixelType::kFloat;

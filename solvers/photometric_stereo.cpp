@@ -5,8 +5,8 @@
 #include <limits>
 #include <type_traits>
 
-#include <Eigen/Dense>
 #include <fmt/format.h>
+#include <Eigen/Dense>
 
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/parallel.h"
@@ -77,7 +77,8 @@ io::Status ValidatePsOptions(const PsOptions& o) {
   };
   if (!(o.dark_fraction >= 0 && o.dark_fraction <= 0.9)) return bad("dark_fraction", o.dark_fraction);
   if (!(o.bright_fraction >= 0 && o.bright_fraction <= 0.9)) return bad("bright_fraction", o.bright_fraction);
-  if (!(o.dark_fraction + o.bright_fraction < 0.9)) return bad("dark_fraction + bright_fraction", o.dark_fraction + o.bright_fraction);
+  if (!(o.dark_fraction + o.bright_fraction < 0.9))
+    return bad("dark_fraction + bright_fraction", o.dark_fraction + o.bright_fraction);
   if (o.irls_iterations < 0 || o.irls_iterations > 50) return bad("irls_iterations", o.irls_iterations);
   if (!(o.tukey_c > 0)) return bad("tukey_c", o.tukey_c);
   if (!(o.shadow_floor >= 0 && o.shadow_floor < 1)) return bad("shadow_floor", o.shadow_floor);
@@ -101,9 +102,7 @@ io::Expected<PsSolver> PsSolver::Create(const BlockLights& lights, const PsOptio
   s.options_ = options;
   s.lights_ = lights;
   const int n = lights.count();
-  if (n < 3)
-    return io::Status::BadInput(
-        fmt::format("photometric stereo needs at least 3 lights, got {}", n));
+  if (n < 3) return io::Status::BadInput(fmt::format("photometric stereo needs at least 3 lights, got {}", n));
   if (!lights.near_field()) {
     const Eigen::MatrixXd l = lights.directions.cast<double>();
     s.condition_ = ConditionNumber(l);
@@ -309,13 +308,22 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
       }
     }
     auto lvx = [&](int i, int t) {
-      if constexpr (near) return vx[i * T + t]; else return lx[i];
+      if constexpr (near)
+        return vx[i * T + t];
+      else
+        return lx[i];
     };
     auto lvy = [&](int i, int t) {
-      if constexpr (near) return vy[i * T + t]; else return ly[i];
+      if constexpr (near)
+        return vy[i * T + t];
+      else
+        return ly[i];
     };
     auto lvz = [&](int i, int t) {
-      if constexpr (near) return vz[i * T + t]; else return lz[i];
+      if constexpr (near)
+        return vz[i * T + t];
+      else
+        return lz[i];
     };
 
     // 3. Initial inlier set.
@@ -532,9 +540,9 @@ float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d&
   if (c == 3) {
     for (int k = 0; k < 3; ++k) scale[k] = static_cast<float>(1.0 / intensity[k]);
   } else {
-    scale[0] = static_cast<float>(1.0 / io::Bt709Luminance(static_cast<float>(intensity[0]),
-                                                           static_cast<float>(intensity[1]),
-                                                           static_cast<float>(intensity[2])));
+    scale[0] =
+        static_cast<float>(1.0 / io::Bt709Luminance(static_cast<float>(intensity[0]), static_cast<float>(intensity[1]),
+                                                    static_cast<float>(intensity[2])));
   }
   // One pass: subtract, scale, track the largest magnitude (NaN is skipped
   // by the comparison).
@@ -565,8 +573,8 @@ float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d&
 }
 
 io::Status SolvePhotometricStereo(const std::vector<cv::Mat>& frames, const BlockLights& lights,
-                                  const PsOptions& options, const cv::Mat& mask, const cv::Mat& points_m,
-                                  PsMaps* out, int threads) {
+                                  const PsOptions& options, const cv::Mat& mask, const cv::Mat& points_m, PsMaps* out,
+                                  int threads) {
   auto solver = PsSolver::Create(lights, options);
   if (!solver.ok()) return solver.status();
   if (static_cast<int>(frames.size()) != lights.count())

@@ -25,11 +25,11 @@ enum class FileFormat { kExr, kPng, kTiff, kHdr, kUnknown };
 struct ImageInfo {
   int width = 0;
   int height = 0;
-  int channels = 0;                 ///< channels delivered by the readers: 1 or 3
-  std::string pixel_type;           ///< "half", "float", "uint32", "uint8", "uint16"
+  int channels = 0;        ///< channels delivered by the readers: 1 or 3
+  std::string pixel_type;  ///< "half", "float", "uint32", "uint8", "uint16"
   FileFormat format = FileFormat::kUnknown;
   std::vector<std::string> channel_names;  ///< as stored (EXR), or R,G,B / Y
-  int lines_per_block = 1;          ///< EXR scan lines per compressed block
+  int lines_per_block = 1;                 ///< EXR scan lines per compressed block
 };
 
 /// How to turn stored values into linear radiance.
@@ -62,8 +62,7 @@ class BandReader {
  public:
   virtual ~BandReader() = default;
   /// Opens `path`. Fails with a message naming the file.
-  static Expected<std::unique_ptr<BandReader>> Open(const std::string& path,
-                                                    const DecodeOptions& options = {});
+  static Expected<std::unique_ptr<BandReader>> Open(const std::string& path, const DecodeOptions& options = {});
   virtual const ImageInfo& info() const = 0;
   /// Reads rows [y0, y1) into *out (resized to (y1-y0) x width, CV_32FC1/3).
   virtual Status ReadRows(int y0, int y1, cv::Mat* out) = 0;

@@ -51,12 +51,12 @@ struct NormalsResult {
   DepthMap depth;      ///< empty when integration was off
   int band_rows = 0;   ///< rows per band chosen from the budget
   int bands = 0;
-  int64_t planned_bytes = 0;       ///< the plan's estimate of peak memory
+  int64_t planned_bytes = 0;         ///< the plan's estimate of peak memory
   std::vector<int> all_zero_lights;  ///< lights whose frame is zero everywhere (warning)
   int near_field_iterations = 0;
   double near_field_change_deg = 0.0;
   double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;  ///< wall
-  double read_cpu_seconds = 0, solve_cpu_seconds = 0;  ///< process CPU time (all threads)
+  double read_cpu_seconds = 0, solve_cpu_seconds = 0;                 ///< process CPU time (all threads)
 };
 
 /// Solves `camera_id` ("" = the first camera) of `session`.
@@ -79,8 +79,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
 /// are compressed concurrently on `threads` (0 = all cores) and removed
 /// again if any of them fails.
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
-                               const std::map<std::string, std::string>& provenance, bool overwrite,
-                               int threads = 0);
+                               const std::map<std::string, std::string>& provenance, bool overwrite, int threads = 0);
 
 /// Names of the files WriteNormalsOutputs writes, in order.
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result);

@@ -157,8 +157,8 @@ struct PsMaps {
   cv::Mat normals, albedo, confidence;
 };
 io::Status SolvePhotometricStereo(const std::vector<cv::Mat>& frames, const BlockLights& lights,
-                                  const PsOptions& options, const cv::Mat& mask, const cv::Mat& points_m,
-                                  PsMaps* out, int threads = 0);
+                                  const PsOptions& options, const cv::Mat& mask, const cv::Mat& points_m, PsMaps* out,
+                                  int threads = 0);
 
 /// Angle in degrees between two unit normals (clamped dot product).
 double AngleDeg(const Eigen::Vector3f& a, const Eigen::Vector3f& b);
