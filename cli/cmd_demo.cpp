@@ -53,8 +53,8 @@ io::Status PrepareFolder(const std::string& out) {
   return io::WriteTextFile((fs::path(out) / kDemoMarker).string(), "made by lumenrig demo; safe to delete\n", true);
 }
 
-/// Composite of the first camera's matte over a sky background.
-io::Status WriteComposite(const std::string& cam_dir, const std::string& sky_path, const std::string& png) {
+/// Composite of the first camera's matte over a new (gradient) backdrop.
+io::Status WriteComposite(const std::string& cam_dir, const std::string& png) {
   solvers::MatteResult matte;
   auto alpha = io::ReadImage((fs::path(cam_dir) / "matte" / "alpha.exr").string());
   if (!alpha.ok()) return alpha.status();
@@ -63,7 +63,6 @@ io::Status WriteComposite(const std::string& cam_dir, const std::string& sky_pat
   matte.alpha = *alpha;
   matte.foreground = *fg;
   cv::Mat background = solvers::GradientBackground(matte.alpha.size(), {0.35f, 0.45f, 0.65f}, {0.12f, 0.10f, 0.08f});
-  (void)sky_path;
   return solvers::WriteCompositePng(matte, background, 1.0f, png, /*overwrite=*/true);
 }
 
@@ -121,7 +120,7 @@ int RunDemo(const DemoArgs& a) {
   const std::string session_out = (fs::path(results_dir) / id).string();
   const std::string cam_dir = (fs::path(session_out) / cam0).string();
   const std::string composite = (fs::path(a.out) / "composite.png").string();
-  s = WriteComposite(cam_dir, envs->empty() ? "" : envs->front(), composite);
+  s = WriteComposite(cam_dir, composite);
   if (!s.ok()) return ReportError("demo", s);
   const std::string pairs_h5 = (fs::path(results_dir) / (id + ".pairs.h5")).string();
   const std::string pairs_png = (fs::path(a.out) / "pairs_preview.png").string();
