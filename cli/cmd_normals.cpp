@@ -9,6 +9,7 @@
 #include <fmt/format.h>
 
 #include "command.h"
+#include "lumenrig/capture_io/byte_size.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/solvers/normals_stage.h"
 
@@ -46,7 +47,7 @@ int RunNormals(const NormalsArgs& a) {
   const char* name = "normals";
   auto method = solvers::ParsePsMethod(a.method);
   if (!method.ok()) return ReportError(name, method.status());
-  auto budget = solvers::ParseByteSize(a.mem_budget);
+  auto budget = io::ParseByteSize(a.mem_budget);
   if (!budget.ok()) return ReportError(name, budget.status());
   solvers::NormalsOptions options;
   options.ps.method = *method;

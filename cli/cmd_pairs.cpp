@@ -5,7 +5,7 @@
 #include <fmt/format.h>
 
 #include "command.h"
-#include "lumenrig/solvers/normals_stage.h"
+#include "lumenrig/capture_io/byte_size.h"
 #include "lumenrig/synth/pairs.h"
 
 namespace lumenrig::cli {
@@ -29,7 +29,7 @@ int Run(PairsArgs& a) {
   const auto t0 = std::chrono::steady_clock::now();
   io::Status st = ParseSize(a.size, &a.o.width, &a.o.height);
   if (!st.ok()) return ReportError(cmd, st);
-  auto budget = solvers::ParseByteSize(a.mem_budget);
+  auto budget = io::ParseByteSize(a.mem_budget);
   if (!budget.ok()) return ReportError(cmd, budget.status());
   a.o.mem_budget_bytes = *budget;
   synth::PairsSummary sum;

@@ -5,9 +5,9 @@
 
 #include "command.h"
 #include "lumenrig/capture_io/atomic_file.h"
+#include "lumenrig/capture_io/byte_size.h"
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
-#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/synth/envmap.h"
 #include "lumenrig/synth/relight.h"
 
@@ -36,7 +36,7 @@ int Run(const RelightArgs& a) {
   }
   io::Status st = io::CheckOutputPath(a.out, a.force);
   if (!st.ok()) return ReportError(cmd, st);
-  auto budget = solvers::ParseByteSize(a.mem_budget);
+  auto budget = io::ParseByteSize(a.mem_budget);
   if (!budget.ok()) return ReportError(cmd, budget.status());
   auto session = io::LoadSession(a.session);
   if (!session.ok()) return ReportError(cmd, session.status());

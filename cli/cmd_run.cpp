@@ -9,8 +9,8 @@
 #endif
 
 #include "command.h"
+#include "lumenrig/capture_io/byte_size.h"
 #include "lumenrig/capture_io/parallel.h"
-#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/synth/pipeline.h"
 
 namespace lumenrig::cli {
@@ -193,7 +193,7 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
     o.shard_count = shard.size();
     io::Status s = ParseStages(args->stages, &o.stages);
     if (!s.ok()) return ReportError("run", s);
-    auto budget = solvers::ParseByteSize(args->mem_budget);
+    auto budget = io::ParseByteSize(args->mem_budget);
     if (!budget.ok()) return ReportError("run", budget.status());
     o.mem_budget_bytes = *budget;
     o.normals_options = {{"method", args->normals_method}};

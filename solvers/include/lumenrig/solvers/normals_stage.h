@@ -84,10 +84,6 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
 /// Names of the files WriteNormalsOutputs writes, in order.
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result);
 
-/// Parses a byte size: plain bytes or a number with K/M/G/T (powers of
-/// 1024; "KiB"/"KB"/"k" accepted alike), e.g. "1G", "512M", "1.5G".
-io::Expected<int64_t> ParseByteSize(const std::string& text);
-
 /// Normals, albedo and depth side by side as an 8-bit BGR image (normals as
 /// (n + 1) / 2, albedo sRGB-encoded, depth near = bright).
 cv::Mat NormalsPreview(const NormalsResult& result);
