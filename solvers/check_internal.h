@@ -2,11 +2,13 @@
 // Private pieces of the session check shared by session_check.cpp and the
 // check_*.cpp files. Not installed; not part of the public API.
 
+#include <memory>
 #include <string>
 #include <vector>
 
 #include <opencv2/core.hpp>
 
+#include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/solvers/session_check.h"
 
@@ -23,6 +25,22 @@ void AddFinding(CheckLine* line, Finding finding);
 /// findings in *integrity (completeness line).
 io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
                        CheckLine* integrity, int threads);
+
+/// The same pass in two halves around the OLAT frames, so a caller that
+/// decodes them anyway can stream their rows in (ScanRows) and ScanFinish
+/// reads only what was not streamed completely. ScanSession = both halves.
+/// Per camera, the reference geometry, mask and aux frames (phase A); *result
+/// and *integrity must outlive the state.
+io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                     CheckLine* integrity, int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state);
+/// Decoded rows [y0, y1) of OLAT frame `frame` of camera `camera`; see
+/// StreamedCheck::Rows.
+void ScanRows(ScanState* state, int camera, int frame, const io::ImageInfo& info, int y0, int y1,
+              const cv::Mat& rows);
+/// Accumulator bytes while camera `camera`'s OLAT frames are streamed.
+int64_t ScanStreamBytes(const ScanState& state, int camera);
+/// Every frame not yet summarised (phase B).
+io::Status ScanFinish(ScanState* state);
 
 /// Translation of `moved` against `reference` (both CV_32FC1, same size) by
 /// OpenCV phase correlation with the given window (CV_32FC1, empty = Hann).

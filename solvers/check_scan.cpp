@@ -4,6 +4,7 @@
 #include <algorithm>
 #include <atomic>
 #include <cmath>
+#include <memory>
 #include <mutex>
 
 #include <opencv2/imgcodecs.hpp>
@@ -105,6 +106,245 @@ struct FrameJob {
   std::string path;
 };
 
+/// The per-frame reduction of the check, fed with decoded rows in increasing
+/// order (any band partition gives the same result: every sum runs row by
+/// row). Used by ScanFrame for frames the check reads itself, and by the
+/// streamed check for OLAT frames another stage decodes.
+class FrameScanner {
+ public:
+  FrameScanner(const CameraContext& ctx, const CheckOptions& options, double saturation)
+      : ctx_(ctx), options_(options), saturation_(saturation) {}
+
+  /// Starts a frame of the camera's size (`info` from its reader).
+  void Begin(const FrameJob& job, const io::ImageInfo& info, FrameSummary* s) {
+    s_ = s;
+    s->kind = job.kind;
+    s->camera = job.camera;
+    s->light = job.light;
+    s->order = job.order;
+    s->path = job.path;
+    s->width = info.width;
+    s->height = info.height;
+    s->channels = info.channels;
+    s->pixel_type = info.pixel_type;
+    W_ = info.width;
+    H_ = info.height;
+    nc_ = info.channels;
+    next_row_ = 0;
+    const double tscale = options_.thumbnail_px / std::max(W_, H_);
+    tw_ = std::max(1, static_cast<int>(std::lround(W_ * std::min(1.0, tscale))));
+    th_ = std::max(1, static_cast<int>(std::lround(H_ * std::min(1.0, tscale))));
+    tx_.resize(W_);
+    for (int x = 0; x < W_; ++x) tx_[x] = static_cast<int>(static_cast<int64_t>(x) * tw_ / W_);
+    tacc_.assign(static_cast<size_t>(tw_) * th_ * 3, 0.0);
+    tcnt_.assign(static_cast<size_t>(tw_) * th_, 0);
+    gsum_.assign(static_cast<size_t>(ctx_.grid_w) * ctx_.grid_h, 0.0);
+    gcnt_.assign(gsum_.size(), 0);
+    mf_ = 1;
+    mw_ = mh_ = 0;
+    macc_.clear();
+    if (job.kind == FrameKind::kTracking) {
+      mf_ = ctx_.motion_factor;
+      mw_ = W_ / mf_;
+      mh_ = H_ / mf_;
+      macc_.assign(static_cast<size_t>(mw_) * mh_, 0.0f);
+    }
+    hist_.assign(kHistBins, 0);
+    hist_scale_ = kHistBins / (saturation_ * 1.0625);
+    sat_ = static_cast<float>(saturation_ * (1.0 - 1e-3));
+    sum_r_ = sum_g_ = sum_b_ = sum_abs_d_ = 0;
+    count_ = clipped_ = n_d_ = 0;
+    full_mask_row_.assign(W_, 255);
+    thumb_step_ = std::max(1, std::min(W_ / tw_, H_ / th_) / 4);
+    noise_step_ = std::max(1, H_ / 256);
+  }
+
+  /// Rows [y0, y1) of the frame (CV_32FC1/3, decoded). False when they do not
+  /// continue the rows seen so far or do not match the frame's geometry.
+  bool Rows(int y0, int y1, const cv::Mat& rows) {
+    if (y0 != next_row_ || y1 > H_ || rows.rows != y1 - y0 || rows.cols != W_ || rows.channels() != nc_ ||
+        rows.depth() != CV_32F)
+      return false;
+    for (int y = y0; y < y1; ++y) Row(y, rows.ptr<float>(y - y0));
+    next_row_ = y1;
+    return true;
+  }
+
+  bool Complete() const { return next_row_ == H_ && H_ > 0; }
+
+  /// Turns the sums into the frame's summary; tracking frames return their
+  /// area-reduced luminance in *motion.
+  void Finish(cv::Mat* motion) {
+    FrameSummary* s = s_;
+    s->readable = true;
+    // Statistics inside the mask, corrected by the residual dark level.
+    if (count_ > 0) {
+      s->mean_rgb = Eigen::Vector3d(sum_r_, sum_g_, sum_b_) / static_cast<double>(count_) - ctx_.dark_rgb;
+      s->mean = Luma(static_cast<float>(s->mean_rgb.x()), static_cast<float>(s->mean_rgb.y()),
+                     static_cast<float>(s->mean_rgb.z()));
+      s->clipped_pct = 100.0 * static_cast<double>(clipped_) / static_cast<double>(count_);
+      const int64_t target = static_cast<int64_t>(std::ceil(0.99 * static_cast<double>(count_)));
+      int64_t acc = 0;
+      int bin = 0;
+      for (; bin < kHistBins; ++bin) {
+        acc += hist_[bin];
+        if (acc >= target) break;
+      }
+      s->p99 = (bin + 0.5) / hist_scale_ - ctx_.dark_lum;
+    }
+    // Gaussian noise: E|d| = sigma * sqrt(6) * sqrt(2/pi) for the [1,-2,1] kernel
+    // (the 1-D form of Immerkaer, "Fast noise variance estimation", CVIU 1996).
+    if (n_d_ > 0)
+      s->noise_sigma = std::sqrt(M_PI / 2.0) * (sum_abs_d_ / static_cast<double>(n_d_)) / std::sqrt(6.0);
+    s->snr_db = (s->noise_sigma > 0 && s->mean > 0) ? 20.0 * std::log10(s->mean / s->noise_sigma) : 0.0;
+
+    // Analysis grid.
+    s->grid_w = ctx_.grid_w;
+    s->grid_h = ctx_.grid_h;
+    s->grid.assign(gsum_.size(), 0.0f);
+    for (size_t i = 0; i < gsum_.size(); ++i)
+      if (gcnt_[i] > 0) s->grid[i] = static_cast<float>(gsum_[i] / gcnt_[i] - ctx_.dark_lum);
+
+    // Thumbnail: full scale (saturation) maps to white.
+    cv::Mat thumb(th_, tw_, CV_32FC3);
+    for (int y = 0; y < th_; ++y) {
+      float* o = thumb.ptr<float>(y);
+      for (int x = 0; x < tw_; ++x) {
+        const size_t i = static_cast<size_t>(y) * tw_ + x;
+        const double n = std::max(1, tcnt_[i]);
+        for (int c = 0; c < 3; ++c) o[3 * x + c] = static_cast<float>(tacc_[3 * i + c] / n);
+      }
+    }
+    cv::imencode(".png", io::ToPreview8(thumb, static_cast<float>(1.0 / saturation_)), s->thumbnail_png);
+
+    if (!macc_.empty() && motion != nullptr) {
+      const float inv = 1.0f / static_cast<float>(mf_ * mf_);
+      for (auto& v : macc_) v *= inv;
+      cv::Mat(mh_, mw_, CV_32F, macc_.data()).copyTo(*motion);
+    }
+    Release();
+  }
+
+  /// Frees the accumulators (a scanner whose frame is abandoned).
+  void Release() {
+    std::vector<double>().swap(tacc_);
+    std::vector<int>().swap(tcnt_);
+    std::vector<double>().swap(gsum_);
+    std::vector<int>().swap(gcnt_);
+    std::vector<float>().swap(macc_);
+    std::vector<int64_t>().swap(hist_);
+    std::vector<int>().swap(tx_);
+    std::vector<unsigned char>().swap(full_mask_row_);
+  }
+
+  /// Accumulator bytes for a frame of the camera's size (memory plans).
+  static int64_t BytesFor(const CameraContext& ctx, const CheckOptions& options) {
+    const double tscale = options.thumbnail_px / std::max(1, std::max(ctx.width, ctx.height));
+    const int64_t tw = std::max(1, static_cast<int>(std::lround(ctx.width * std::min(1.0, tscale))));
+    const int64_t th = std::max(1, static_cast<int>(std::lround(ctx.height * std::min(1.0, tscale))));
+    return tw * th * (3 * 8 + 4) + int64_t{kHistBins} * 8 + int64_t{ctx.grid_w} * ctx.grid_h * 12 +
+           int64_t{ctx.width} * 5 + 4096;
+  }
+
+ private:
+  void Row(int y, const float* p) {
+    const unsigned char* m = ctx_.mask.empty() ? full_mask_row_.data() : ctx_.mask.ptr<unsigned char>(y);
+    const int nc = nc_, W = W_;
+    const float sat = sat_;
+    auto rgb = [&](int x, float* r, float* g, float* b) {
+      if (nc == 3) {
+        *r = p[3 * x];
+        *g = p[3 * x + 1];
+        *b = p[3 * x + 2];
+      } else {
+        *r = *g = *b = p[x];
+      }
+    };
+    auto luma = [&](int x) { return nc == 3 ? Luma(p[3 * x], p[3 * x + 1], p[3 * x + 2]) : p[x]; };
+    // Statistics over the mask pixels of this row (its extent precomputed).
+    const int xb = ctx_.row_begin[y], xe = ctx_.row_end[y];
+    if (xb < xe) {
+      const int gy = ctx_.grid_y[y];
+      double* grow = &gsum_[static_cast<size_t>(gy) * ctx_.grid_w];
+      int* gcrow = &gcnt_[static_cast<size_t>(gy) * ctx_.grid_w];
+      float rr = 0, rg = 0, rb = 0;
+      int64_t rc = 0, rclip = 0;
+      for (int x = xb; x < xe; ++x) {
+        if (!m[x]) continue;
+        float r, g, b;
+        rgb(x, &r, &g, &b);
+        const float l = Luma(r, g, b);
+        rr += r;
+        rg += g;
+        rb += b;
+        ++rc;
+        rclip += std::max(r, std::max(g, b)) >= sat ? 1 : 0;
+        const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale_)));
+        ++hist_[bin];
+        const int gx = ctx_.grid_x[x];
+        grow[gx] += l;
+        ++gcrow[gx];
+      }
+      sum_r_ += rr;
+      sum_g_ += rg;
+      sum_b_ += rb;
+      count_ += rc;
+      clipped_ += rclip;
+      // Noise: horizontal second difference inside the mask, away from
+      // clipping, on every noise_step-th row (plenty of samples).
+      if (y % noise_step_ == 0) {
+        for (int x = std::max(1, xb); x + 1 < std::min(W, xe + 1); ++x) {
+          if (!(m[x - 1] && m[x] && m[x + 1])) continue;
+          const float a = luma(x - 1), c = luma(x), d = luma(x + 1);
+          if (a < sat && c < sat && d < sat) {
+            sum_abs_d_ += std::abs(a - 2.0f * c + d);
+            ++n_d_;
+          }
+        }
+      }
+    }
+    // Thumbnail from a regular subsample (about 16 samples per thumbnail pixel).
+    if (y % thumb_step_ == 0) {
+      const int ty = static_cast<int>(static_cast<int64_t>(y) * th_ / H_);
+      double* trow = &tacc_[static_cast<size_t>(ty) * tw_ * 3];
+      int* tcrow = &tcnt_[static_cast<size_t>(ty) * tw_];
+      for (int x = 0; x < W; x += thumb_step_) {
+        float r, g, b;
+        rgb(x, &r, &g, &b);
+        double* t = trow + 3 * tx_[x];
+        t[0] += r;
+        t[1] += g;
+        t[2] += b;
+        ++tcrow[tx_[x]];
+      }
+    }
+    if (!macc_.empty() && y / mf_ < mh_) {
+      float* mrow = &macc_[static_cast<size_t>(y / mf_) * mw_];
+      for (int x = 0; x < mw_ * mf_; ++x) mrow[x / mf_] += luma(x);
+    }
+  }
+
+  const CameraContext& ctx_;
+  const CheckOptions& options_;
+  const double saturation_;
+  FrameSummary* s_ = nullptr;
+  int W_ = 0, H_ = 0, nc_ = 0, next_row_ = 0;
+  int tw_ = 1, th_ = 1, thumb_step_ = 1, noise_step_ = 1;
+  std::vector<int> tx_;
+  std::vector<double> tacc_;
+  std::vector<int> tcnt_;
+  std::vector<double> gsum_;
+  std::vector<int> gcnt_;
+  int mf_ = 1, mw_ = 0, mh_ = 0;
+  std::vector<float> macc_;
+  std::vector<int64_t> hist_;
+  double hist_scale_ = 1.0;
+  float sat_ = 1.0f;
+  double sum_r_ = 0, sum_g_ = 0, sum_b_ = 0, sum_abs_d_ = 0;
+  int64_t count_ = 0, clipped_ = 0, n_d_ = 0;
+  std::vector<unsigned char> full_mask_row_;
+};
+
 /// Reads one frame once. Tracking frames also return their area-reduced
 /// luminance in *motion (empty otherwise).
 void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOptions& decode,
@@ -129,179 +369,57 @@ void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOp
     s->readable = true;
     return;
   }
-  const int W = info.width, H = info.height;
-  const int nc = info.channels;
-
-  // Thumbnail grid (all pixels) and analysis grid (mask pixels).
-  const double tscale = options.thumbnail_px / std::max(W, H);
-  const int tw = std::max(1, static_cast<int>(std::lround(W * std::min(1.0, tscale))));
-  const int th = std::max(1, static_cast<int>(std::lround(H * std::min(1.0, tscale))));
-  std::vector<int> tx(W);
-  for (int x = 0; x < W; ++x) tx[x] = static_cast<int>(static_cast<int64_t>(x) * tw / W);
-  std::vector<double> tacc(static_cast<size_t>(tw) * th * 3, 0.0);
-  std::vector<int> tcnt(static_cast<size_t>(tw) * th, 0);
-  std::vector<double> gsum(static_cast<size_t>(ctx.grid_w) * ctx.grid_h, 0.0);
-  std::vector<int> gcnt(gsum.size(), 0);
-
-  // Motion grid (tracking frames): integer area reduction.
-  int mf = 1, mw = 0, mh = 0;
-  std::vector<float> macc;
-  if (job.kind == FrameKind::kTracking) {
-    mf = ctx.motion_factor;
-    mw = W / mf;
-    mh = H / mf;
-    macc.assign(static_cast<size_t>(mw) * mh, 0.0f);
-  }
-
-  std::vector<int64_t> hist(kHistBins, 0);
-  const double hist_max = saturation * 1.0625;
-  const double hist_scale = kHistBins / hist_max;
-  const float sat = static_cast<float>(saturation * (1.0 - 1e-3));
-  double sum_r = 0, sum_g = 0, sum_b = 0, sum_abs_d = 0;
-  int64_t count = 0, clipped = 0, n_d = 0;
-
+  FrameScanner scanner(ctx, options, saturation);
+  scanner.Begin(job, info, s);
   const int lpb = std::max(1, info.lines_per_block);
   const int band = std::max(lpb, static_cast<int>(std::lround(options.band_rows / lpb)) * lpb);
   cv::Mat rows;
-  std::vector<unsigned char> full_mask_row(W, 255);
-  const int thumb_step = std::max(1, std::min(W / tw, H / th) / 4);
-  const int noise_step = std::max(1, H / 256);
-  for (int y0 = 0; y0 < H; y0 += band) {
-    const int y1 = std::min(H, y0 + band);
+  for (int y0 = 0; y0 < info.height; y0 += band) {
+    const int y1 = std::min(info.height, y0 + band);
     io::Status st = (*reader)->ReadRows(y0, y1, &rows);
     if (!st.ok()) {
       s->error = st.message();
+      scanner.Release();
       return;
     }
-    for (int y = y0; y < y1; ++y) {
-      const float* p = rows.ptr<float>(y - y0);
-      const unsigned char* m = ctx.mask.empty() ? full_mask_row.data() : ctx.mask.ptr<unsigned char>(y);
-      auto rgb = [&](int x, float* r, float* g, float* b) {
-        if (nc == 3) {
-          *r = p[3 * x];
-          *g = p[3 * x + 1];
-          *b = p[3 * x + 2];
-        } else {
-          *r = *g = *b = p[x];
-        }
-      };
-      auto luma = [&](int x) { return nc == 3 ? Luma(p[3 * x], p[3 * x + 1], p[3 * x + 2]) : p[x]; };
-      // Statistics over the mask pixels of this row (its extent precomputed).
-      const int xb = ctx.row_begin[y], xe = ctx.row_end[y];
-      if (xb < xe) {
-        const int gy = ctx.grid_y[y];
-        double* grow = &gsum[static_cast<size_t>(gy) * ctx.grid_w];
-        int* gcrow = &gcnt[static_cast<size_t>(gy) * ctx.grid_w];
-        float rr = 0, rg = 0, rb = 0;
-        int64_t rc = 0, rclip = 0;
-        for (int x = xb; x < xe; ++x) {
-          if (!m[x]) continue;
-          float r, g, b;
-          rgb(x, &r, &g, &b);
-          const float l = Luma(r, g, b);
-          rr += r;
-          rg += g;
-          rb += b;
-          ++rc;
-          rclip += std::max(r, std::max(g, b)) >= sat ? 1 : 0;
-          const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale)));
-          ++hist[bin];
-          const int gx = ctx.grid_x[x];
-          grow[gx] += l;
-          ++gcrow[gx];
-        }
-        sum_r += rr;
-        sum_g += rg;
-        sum_b += rb;
-        count += rc;
-        clipped += rclip;
-        // Noise: horizontal second difference inside the mask, away from
-        // clipping, on every noise_step-th row (plenty of samples).
-        if (y % noise_step == 0) {
-          for (int x = std::max(1, xb); x + 1 < std::min(W, xe + 1); ++x) {
-            if (!(m[x - 1] && m[x] && m[x + 1])) continue;
-            const float a = luma(x - 1), c = luma(x), d = luma(x + 1);
-            if (a < sat && c < sat && d < sat) {
-              sum_abs_d += std::abs(a - 2.0f * c + d);
-              ++n_d;
-            }
-          }
-        }
-      }
-      // Thumbnail from a regular subsample (about 16 samples per thumbnail pixel).
-      if (y % thumb_step == 0) {
-        const int ty = static_cast<int>(static_cast<int64_t>(y) * th / H);
-        double* trow = &tacc[static_cast<size_t>(ty) * tw * 3];
-        int* tcrow = &tcnt[static_cast<size_t>(ty) * tw];
-        for (int x = 0; x < W; x += thumb_step) {
-          float r, g, b;
-          rgb(x, &r, &g, &b);
-          double* t = trow + 3 * tx[x];
-          t[0] += r;
-          t[1] += g;
-          t[2] += b;
-          ++tcrow[tx[x]];
-        }
-      }
-      if (!macc.empty() && y / mf < mh) {
-        float* mrow = &macc[static_cast<size_t>(y / mf) * mw];
-        for (int x = 0; x < mw * mf; ++x) mrow[x / mf] += luma(x);
-      }
-    }
+    scanner.Rows(y0, y1, rows);
   }
-  s->readable = true;
-
-  // Statistics inside the mask, corrected by the residual dark level.
-  if (count > 0) {
-    s->mean_rgb = Eigen::Vector3d(sum_r, sum_g, sum_b) / static_cast<double>(count) - ctx.dark_rgb;
-    s->mean = Luma(static_cast<float>(s->mean_rgb.x()), static_cast<float>(s->mean_rgb.y()),
-                   static_cast<float>(s->mean_rgb.z()));
-    s->clipped_pct = 100.0 * static_cast<double>(clipped) / static_cast<double>(count);
-    const int64_t target = static_cast<int64_t>(std::ceil(0.99 * static_cast<double>(count)));
-    int64_t acc = 0;
-    int bin = 0;
-    for (; bin < kHistBins; ++bin) {
-      acc += hist[bin];
-      if (acc >= target) break;
-    }
-    s->p99 = (bin + 0.5) / hist_scale - ctx.dark_lum;
-  }
-  // Gaussian noise: E|d| = sigma * sqrt(6) * sqrt(2/pi) for the [1,-2,1] kernel
-  // (the 1-D form of Immerkaer, "Fast noise variance estimation", CVIU 1996).
-  if (n_d > 0) s->noise_sigma = std::sqrt(M_PI / 2.0) * (sum_abs_d / static_cast<double>(n_d)) / std::sqrt(6.0);
-  s->snr_db = (s->noise_sigma > 0 && s->mean > 0) ? 20.0 * std::log10(s->mean / s->noise_sigma) : 0.0;
-
-  // Analysis grid.
-  s->grid_w = ctx.grid_w;
-  s->grid_h = ctx.grid_h;
-  s->grid.assign(gsum.size(), 0.0f);
-  for (size_t i = 0; i < gsum.size(); ++i)
-    if (gcnt[i] > 0) s->grid[i] = static_cast<float>(gsum[i] / gcnt[i] - ctx.dark_lum);
-
-  // Thumbnail: full scale (saturation) maps to white.
-  cv::Mat thumb(th, tw, CV_32FC3);
-  for (int y = 0; y < th; ++y) {
-    float* o = thumb.ptr<float>(y);
-    for (int x = 0; x < tw; ++x) {
-      const size_t i = static_cast<size_t>(y) * tw + x;
-      const double n = std::max(1, tcnt[i]);
-      for (int c = 0; c < 3; ++c) o[3 * x + c] = static_cast<float>(tacc[3 * i + c] / n);
-    }
-  }
-  cv::imencode(".png", io::ToPreview8(thumb, static_cast<float>(1.0 / saturation)), s->thumbnail_png);
-
-  if (!macc.empty()) {
-    const float inv = 1.0f / static_cast<float>(mf * mf);
-    for (auto& v : macc) v *= inv;
-    cv::Mat(mh, mw, CV_32F, macc.data()).copyTo(*motion);
-  }
+  scanner.Finish(motion);
 }
 
 }  // namespace
 
-io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
-                       CheckLine* integrity, int threads) {
+struct ScanState {
+  const io::Session* session = nullptr;
+  CheckOptions options;
+  CheckResult* result = nullptr;
+  int threads = 0;
+  io::DecodeOptions decode;
+  double saturation = 1.0;
+  std::vector<CameraContext> contexts;
+  std::vector<FrameJob> jobs;
+  std::vector<int> olat_offset;  // per camera, index of its first OLAT job
+  std::vector<char> scanned;     // frames already summarised (phase A or streamed)
+  std::vector<std::unique_ptr<FrameScanner>> streams;  // per job, while rows are streamed in
+  std::mutex progress_mutex;
+  int done = 0;
+  void ReportProgress() {
+    if (!options.progress) return;
+    std::lock_guard<std::mutex> lock(progress_mutex);
+    options.progress(++done, static_cast<int>(jobs.size()));
+  }
+};
+
+io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                     CheckLine* integrity, int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state_out) {
+  std::unique_ptr<ScanState, ScanStateDeleter> state(new ScanState());
+  ScanState& st = *state;
+  st.session = &session;
+  st.options = options;
+  st.result = result;
+  st.threads = threads;
   const io::DecodeOptions decode = io::DecodeOptionsFor(session);
+  st.decode = decode;
   // Saturation in decoded units (after transfer function and black level).
   double saturation = options.saturation_level;
   if (decode.encoding == io::Encoding::kSrgb) saturation = io::SrgbToLinear(static_cast<float>(saturation));
@@ -309,16 +427,20 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
   if (!(saturation > 0))
     return io::Status::BadInput(fmt::format("{}: black_level {} is at or above exposure.saturation_level {}",
                                             session.path, decode.black_level, options.saturation_level));
+  st.saturation = saturation;
 
   const int ncam = static_cast<int>(session.cameras.size());
   result->cameras.assign(ncam, CameraSummary{});
-  std::vector<CameraContext> contexts(ncam);
+  st.contexts.assign(ncam, CameraContext{});
+  std::vector<CameraContext>& contexts = st.contexts;
   std::vector<std::vector<Finding>> cam_findings(ncam);
 
   // Every OLAT and tracking frame, in list order per camera.
-  std::vector<FrameJob> jobs;
+  std::vector<FrameJob>& jobs = st.jobs;
+  st.olat_offset.assign(ncam, 0);
   for (int c = 0; c < ncam; ++c) {
     const io::Camera& cam = session.cameras[c];
+    st.olat_offset[c] = static_cast<int>(jobs.size());
     for (size_t i = 0; i < cam.olat.size(); ++i)
       jobs.push_back({c, FrameKind::kOlat, cam.olat[i].light, static_cast<int>(i), cam.olat[i].path});
   }
@@ -332,15 +454,10 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
   for (size_t j = 0; j < jobs.size(); ++j)
     if (jobs[j].kind == FrameKind::kTracking && first_tracking[jobs[j].camera] < 0)
       first_tracking[jobs[j].camera] = static_cast<int>(j);
-  std::vector<char> scanned(jobs.size(), 0);  // frames already read in phase A
-  std::mutex progress_mutex;
-  int done = 0;
-  const int total = static_cast<int>(jobs.size());
-  auto report_progress = [&]() {
-    if (!options.progress) return;
-    std::lock_guard<std::mutex> lock(progress_mutex);
-    options.progress(++done, total);
-  };
+  st.scanned.assign(jobs.size(), 0);
+  st.streams.resize(jobs.size());
+  std::vector<char>& scanned = st.scanned;
+  auto report_progress = [&st]() { st.ReportProgress(); };
 
   // Phase A: per camera, the reference size, mask, dark, clean plate, backlit, lit.
   io::ParallelFor(0, ncam, 1, threads, [&](int64_t b, int64_t e) {
@@ -547,6 +664,58 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
   for (auto& fs : cam_findings)
     for (auto& f : fs) AddFinding(integrity, std::move(f));
 
+  *state_out = std::move(state);
+  return io::Status::Ok();
+}
+
+int64_t ScanStreamBytes(const ScanState& st, int camera) {
+  const CameraContext& ctx = st.contexts[static_cast<size_t>(camera)];
+  if (ctx.width == 0) return 0;
+  return FrameScanner::BytesFor(ctx, st.options) *
+         static_cast<int64_t>(st.session->cameras[static_cast<size_t>(camera)].olat.size());
+}
+
+void ScanRows(ScanState* st, int camera, int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {
+  if (camera < 0 || camera >= static_cast<int>(st->contexts.size())) return;
+  const io::Camera& cam = st->session->cameras[static_cast<size_t>(camera)];
+  if (frame < 0 || frame >= static_cast<int>(cam.olat.size())) return;
+  const CameraContext& ctx = st->contexts[static_cast<size_t>(camera)];
+  if (ctx.width == 0 || info.width != ctx.width || info.height != ctx.height) return;
+  const size_t j = static_cast<size_t>(st->olat_offset[static_cast<size_t>(camera)] + frame);
+  if (st->scanned[j]) return;
+  std::unique_ptr<FrameScanner>& scanner = st->streams[j];
+  if (y0 == 0) {
+    scanner = std::make_unique<FrameScanner>(ctx, st->options, st->saturation);
+    st->result->frames[j] = FrameSummary{};
+    scanner->Begin(st->jobs[j], info, &st->result->frames[j]);
+  }
+  if (!scanner) return;
+  if (!scanner->Rows(y0, y1, rows)) {
+    scanner.reset();  // out of order: Finish reads this frame itself
+    return;
+  }
+  if (scanner->Complete()) {
+    scanner->Finish(nullptr);
+    scanner.reset();
+    st->scanned[j] = 1;
+    st->ReportProgress();
+  }
+}
+
+io::Status ScanFinish(ScanState* state) {
+  ScanState& st = *state;
+  const io::Session& session = *st.session;
+  const CheckOptions& options = st.options;
+  const io::DecodeOptions& decode = st.decode;
+  const double saturation = st.saturation;
+  CheckResult* result = st.result;
+  const std::vector<FrameJob>& jobs = st.jobs;
+  const std::vector<CameraContext>& contexts = st.contexts;
+  const std::vector<char>& scanned = st.scanned;
+  const int total = static_cast<int>(jobs.size());
+  for (auto& s : st.streams) s.reset();  // frames streamed only in part are read below
+  const int threads = st.threads;
+  (void)session;
   // Phase B: every other OLAT and tracking frame once, in parallel across frames.
   io::ParallelFor(0, total, 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t j = b; j < e; ++j) {
@@ -576,10 +745,19 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
           s.has_motion = true;
         }
       }
-      report_progress();
+      st.ReportProgress();
     }
   });
   return io::Status::Ok();
 }
+
+io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
+                       CheckLine* integrity, int threads) {
+  std::unique_ptr<ScanState, ScanStateDeleter> state;
+  LUMENRIG_RETURN_IF_ERROR(ScanBegin(session, options, result, integrity, threads, &state));
+  return ScanFinish(state.get());
+}
+
+void ScanStateDeleter::operator()(ScanState* state) const { delete state; }
 
 }  // namespace lumenrig::solvers::check_detail

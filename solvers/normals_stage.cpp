@@ -202,7 +202,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   // Memory plan (bytes). Band height depends on the budget and the view only,
   // never on the thread count.
   const int64_t px = static_cast<int64_t>(width) * height;
-  const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0));
+  const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0)) + std::max<int64_t>(0, options.observer_bytes);
   const int64_t lpb = std::max(1, std::min(info.lines_per_block, height));
   const int64_t reader_bytes = keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
                                          : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
@@ -288,6 +288,9 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
               errors[static_cast<size_t>(i)] = s;
               continue;
             }
+            if (iter == 0 && options.on_decoded_rows)
+              options.on_decoded_rows(static_cast<int>(i), keep_open ? readers[static_cast<size_t>(i)]->info() : info,
+                                      y0, y1, view);
             const float largest = NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
             frame_max[static_cast<size_t>(i)] = std::max(frame_max[static_cast<size_t>(i)], largest);
           }

@@ -132,22 +132,59 @@ void CheckCompleteness(const io::Session& session, CheckResult* result_out, Chec
 
 using check_detail::AddFinding;
 
-io::Status CheckSession(const io::Session& session, const CheckOptions& options_in, CheckResult* result, int threads) {
-  LUMENRIG_RETURN_IF_ERROR(options_in.Validate());
+struct StreamedCheck::Parts {
+  const io::Session* session = nullptr;
+  CheckOptions options;
+  std::chrono::steady_clock::time_point start;
+  CheckResult result;
+  CheckLine integrity;
+  std::unique_ptr<check_detail::ScanState, check_detail::ScanStateDeleter> scan;
+};
+
+io::Expected<std::unique_ptr<StreamedCheck>> StreamedCheck::Begin(const io::Session& session,
+                                                                  const CheckOptions& options, int threads) {
+  LUMENRIG_RETURN_IF_ERROR(options.Validate());
   if (session.cameras.empty())
     return io::Status::BadInput(fmt::format("{}: cameras: the session lists no camera", session.path));
-  const auto start = std::chrono::steady_clock::now();
-  *result = CheckResult{};
+  std::unique_ptr<StreamedCheck> check(new StreamedCheck());
+  check->parts_ = std::make_unique<Parts>();
+  Parts& p = *check->parts_;
+  p.session = &session;
+  p.options = options;
+  p.start = std::chrono::steady_clock::now();
+  CheckResult* result = &p.result;
   result->session_path = session.path;
   result->session_id = session.Id();
   result->rig_name = session.rig.name;
   result->light_count = static_cast<int>(session.rig.lights.size());
-  result->options = options_in;
+  result->options = options;
   result->options.progress = nullptr;
+  p.integrity = check_detail::MakeLine("completeness", "Every light has a readable OLAT frame per camera", "problems",
+                                       std::numeric_limits<double>::quiet_NaN(), 0.0);
+  LUMENRIG_RETURN_IF_ERROR(check_detail::ScanBegin(session, options, result, &p.integrity, threads, &p.scan));
+  return check;
+}
 
-  CheckLine integrity = check_detail::MakeLine("completeness", "Every light has a readable OLAT frame per camera",
-                                               "problems", std::numeric_limits<double>::quiet_NaN(), 0.0);
-  LUMENRIG_RETURN_IF_ERROR(check_detail::ScanSession(session, options_in, result, &integrity, threads));
+StreamedCheck::~StreamedCheck() = default;
+
+void StreamedCheck::Rows(int camera, int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {
+  if (parts_ && parts_->scan) check_detail::ScanRows(parts_->scan.get(), camera, frame, info, y0, y1, rows);
+}
+
+int64_t StreamedCheck::StreamBytes(int camera) const {
+  return parts_ && parts_->scan ? check_detail::ScanStreamBytes(*parts_->scan, camera) : 0;
+}
+
+io::Status StreamedCheck::Finish(CheckResult* out) {
+  if (!parts_ || !parts_->scan) return io::Status::Internal("StreamedCheck::Finish called twice");
+  Parts& p = *parts_;
+  const io::Session& session = *p.session;
+  const CheckOptions& options_in = p.options;
+  CheckResult* result = &p.result;
+  CheckLine& integrity = p.integrity;
+  LUMENRIG_RETURN_IF_ERROR(check_detail::ScanFinish(p.scan.get()));
+  p.scan.reset();
+  const auto start = p.start;
   check_detail::CheckCompleteness(session, result, &integrity);
 
   std::vector<CheckLine> lines;
@@ -181,7 +218,14 @@ io::Status CheckSession(const io::Session& session, const CheckOptions& options_
   }
   result->checks = std::move(lines);
   result->seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  *out = std::move(p.result);
   return io::Status::Ok();
+}
+
+io::Status CheckSession(const io::Session& session, const CheckOptions& options, CheckResult* result, int threads) {
+  auto check = StreamedCheck::Begin(session, options, threads);
+  if (!check.ok()) return check.status();
+  return (*check)->Finish(result);
 }
 
 nlohmann::json CheckResultToJson(const CheckResult& result) {

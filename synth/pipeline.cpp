@@ -285,8 +285,10 @@ struct Executor {
   std::mutex mutex;  // guards report, first_error, skipped, qa sets
   io::Status first_error;
   std::vector<std::string> qa_failed;
-  tbb::flow::function_node<int>* check_node = nullptr;
-  tbb::flow::function_node<int>* camera_node = nullptr;
+  /// Normals units solved inside their session's check unit (one decode of
+  /// every OLAT frame): index -> what the check produced for them.
+  std::map<int, internal::FusedNormalsUnit> fused;
+  tbb::flow::function_node<int>* unit_node = nullptr;
   tbb::flow::function_node<int>* session_node = nullptr;
 
   explicit Executor(size_t n) : remaining(n), skipped(n, 0), dependents(n) {}
@@ -304,12 +306,41 @@ struct Executor {
       return;
     }
     const StageAdapter* a = FindAdapter(unit.stage);
-    if (a->per_camera) {
-      camera_node->try_put(u);
-    } else if (unit.stage == StageKind::kCheck) {
-      check_node->try_put(u);
+    // Check units and per-camera units share the in-flight slots (each holds
+    // one share of the memory budget); assembly and pairs run one at a time.
+    if (a->per_camera || unit.stage == StageKind::kCheck) {
+      unit_node->try_put(u);
     } else {
       session_node->try_put(u);
+    }
+  }
+
+  /// The session's normals units that are due to run after check unit `u`.
+  std::vector<int> NormalsDueAfter(int u) {
+    std::vector<int> due;
+    const UnitPlan& check = plan->units[static_cast<size_t>(u)];
+    std::lock_guard<std::mutex> lock(mutex);
+    for (size_t k = 0; k < plan->units.size(); ++k) {
+      const UnitPlan& unit = plan->units[k];
+      if (unit.session_index != check.session_index || unit.stage != StageKind::kNormals || skipped[k]) continue;
+      if (unit.state == UnitState::kMissing || unit.state == UnitState::kStale) due.push_back(static_cast<int>(k));
+    }
+    return due;
+  }
+
+  /// Removes what a fused check wrote for normals units that will not run
+  /// (the QA gate closed): a failed session keeps no normals, as if the
+  /// check had run alone.
+  void DropFused(int session_index) {
+    std::lock_guard<std::mutex> lock(mutex);
+    for (auto it = fused.begin(); it != fused.end();) {
+      if (plan->units[static_cast<size_t>(it->first)].session_index == session_index) {
+        std::error_code ec;
+        for (const auto& f : it->second.outputs) fs::remove(f, ec);
+        it = fused.erase(it);
+      } else {
+        ++it;
+      }
     }
   }
 
@@ -358,18 +389,68 @@ struct Executor {
     if (events->unit_progress) ctx.progress = [this, &unit](double f) { events->unit_progress(unit, f); };
     if (events->unit_started) events->unit_started(unit);
 
+    // A check unit solves the session's due normals units in its reading pass.
+    std::vector<internal::FusedNormalsUnit> fuse;
+    std::vector<int> fuse_index;  // the unit of each fuse entry
+    if (unit.stage == StageKind::kCheck && FindAdapter(StageKind::kNormals) != nullptr) {
+      for (int k : NormalsDueAfter(u)) {
+        const UnitPlan& nu = plan->units[static_cast<size_t>(k)];
+        internal::FusedNormalsUnit f;
+        f.camera = session.FindCamera(nu.camera_id);
+        for (size_t c = 0; c < session.cameras.size(); ++c)
+          if (session.cameras[c].id == nu.camera_id) f.camera_index = static_cast<int>(c);
+        f.unit_dir = (fs::path(ctx.session_out_dir) / nu.camera_id).string();
+        if (f.camera != nullptr) {
+          fuse.push_back(std::move(f));
+          fuse_index.push_back(k);
+        }
+      }
+      if (!fuse.empty()) ctx.fused_normals = &fuse;
+    }
+    // A normals unit already solved by its session's check only records it.
+    internal::FusedNormalsUnit prefilled;
+    bool is_prefilled = false;
+    {
+      std::lock_guard<std::mutex> lock(mutex);
+      auto it = fused.find(u);
+      if (it != fused.end()) {
+        prefilled = std::move(it->second);
+        fused.erase(it);
+        is_prefilled = true;
+      }
+    }
+
     const auto t0 = std::chrono::steady_clock::now();
     const double cpu0 = ProcessCpuSeconds();
     std::vector<std::string> outputs;
     json extra = json::object();
     io::Status status = io::EnsureDirectory(ctx.unit_dir);
     if (status.ok()) status = io::EnsureDirectory((fs::path(ctx.session_out_dir) / "stamps").string());
-    if (status.ok()) status = a->run(ctx, &outputs, &extra);
+    if (status.ok()) {
+      if (is_prefilled) {
+        outputs = prefilled.outputs;
+        extra = prefilled.extra;
+        extra["solved_in"] = "check";
+      } else {
+        status = a->run(ctx, &outputs, &extra);
+      }
+    }
     if (status.ok()) status = WriteStamp(unit, session, outputs, extra);
-    const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-    const double cpu = ProcessCpuSeconds() - cpu0;
+    double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+    double cpu = ProcessCpuSeconds() - cpu0;
     {
       std::lock_guard<std::mutex> lock(mutex);
+      // The fused solves' time counts for the normals stage, not the check.
+      for (size_t f = 0; f < fuse.size(); ++f) {
+        internal::FusedNormalsUnit& fu = fuse[f];
+        const int k = fuse_index[f];
+        wall -= fu.wall_s;
+        cpu -= fu.cpu_s;
+        StageStats& ns = StatsFor(StageKind::kNormals);
+        ns.wall_s += fu.wall_s;
+        ns.cpu_s += fu.cpu_s;
+        if (status.ok() && fu.done) fused[k] = std::move(fu);
+      }
       StageStats& st = StatsFor(unit.stage);
       st.units_run += 1;
       st.wall_s += wall;
@@ -379,7 +460,11 @@ struct Executor {
     }
     if (events->unit_finished) events->unit_finished(unit, status, wall);
     internal::MaybeKillAt(fmt::format("after:{}:{}:{}", StageName(unit.stage), unit.session_id, unit.camera_id));
-    if (status.ok() && a->blocks_downstream && a->blocks_downstream(extra)) BlockSession(u);
+    if (status.ok() && a->blocks_downstream && a->blocks_downstream(extra)) {
+      BlockSession(u);
+      if (!options->force) DropFused(unit.session_index);
+    }
+    if (!status.ok() && !fuse.empty()) DropFused(unit.session_index);
     Finish(u, !status.ok());
   }
 
@@ -441,11 +526,9 @@ io::Status ExecuteRun(const RunOptions& options, RunPlan* plan, const RunEvents&
   ex.unit_budget = options.mem_budget_bytes / in_flight;
 
   tbb::flow::graph g;
-  tbb::flow::function_node<int> check_node(g, 1, [&](int u) { ex.Run(u); });
-  tbb::flow::function_node<int> camera_node(g, static_cast<size_t>(in_flight), [&](int u) { ex.Run(u); });
+  tbb::flow::function_node<int> unit_node(g, static_cast<size_t>(in_flight), [&](int u) { ex.Run(u); });
   tbb::flow::function_node<int> session_node(g, 1, [&](int u) { ex.Run(u); });
-  ex.check_node = &check_node;
-  ex.camera_node = &camera_node;
+  ex.unit_node = &unit_node;
   ex.session_node = &session_node;
   for (size_t u = 0; u < n; ++u)
     if (plan->units[u].depends_on.empty()) ex.Dispatch(static_cast<int>(u));

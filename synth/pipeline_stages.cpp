@@ -3,7 +3,9 @@
 #include "pipeline_stages.h"
 
 #include <algorithm>
+#include <chrono>
 #include <cstdio>
+#include <ctime>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -127,13 +129,8 @@ io::Status CheckOptionsFromRun(const RunOptions& o, solvers::CheckOptions* optio
   return solvers::SetThresholds(o.check_options, "--check thresholds", options);
 }
 
-io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
-  solvers::CheckOptions options;
-  LUMENRIG_RETURN_IF_ERROR(CheckOptionsFromRun(*ctx.options, &options));
-  if (ctx.progress)
-    options.progress = [&ctx](int done, int total) { ctx.progress(total > 0 ? double(done) / total : 0.0); };
-  solvers::CheckResult result;
-  LUMENRIG_RETURN_IF_ERROR(solvers::CheckSession(*ctx.session, options, &result, ctx.threads));
+io::Status WriteCheckOutputs(const StageUnitContext& ctx, const solvers::CheckResult& result,
+                             std::vector<std::string>* outputs, json* extra) {
   const std::string dir = Join(ctx.session_out_dir, "check");
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
   const std::string json_path = Join(dir, "check.json");
@@ -146,6 +143,54 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
   return io::Status::Ok();
 }
 
+io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
+                          const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra);
+io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options);
+
+double ProcessCpuSeconds() {
+  timespec ts{};
+  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
+  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
+}
+
+io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  solvers::CheckOptions options;
+  LUMENRIG_RETURN_IF_ERROR(CheckOptionsFromRun(*ctx.options, &options));
+  if (ctx.progress)
+    options.progress = [&ctx](int done, int total) { ctx.progress(total > 0 ? double(done) / total : 0.0); };
+  auto check = solvers::StreamedCheck::Begin(*ctx.session, options, ctx.threads);
+  if (!check.ok()) return check.status();
+  // Normals due to run for this session are solved here, each camera's OLAT
+  // frames decoded once and streamed to both the solve and the check; their
+  // outputs are kept only if the verdict lets later stages run (the executor
+  // removes them otherwise). A camera whose solve fails is left to its own
+  // unit, which reports the error; the check reads its frames itself.
+  if (ctx.fused_normals != nullptr) {
+    for (FusedNormalsUnit& unit : *ctx.fused_normals) {
+      const auto t0 = std::chrono::steady_clock::now();
+      const double c0 = ProcessCpuSeconds();
+      solvers::NormalsOptions nopt;
+      LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &nopt));
+      nopt.mem_budget_bytes = ctx.mem_budget_bytes;
+      nopt.observer_bytes = (*check)->StreamBytes(unit.camera_index);
+      solvers::StreamedCheck* sink = check->get();
+      const int ci = unit.camera_index;
+      nopt.on_decoded_rows = [sink, ci](int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {
+        sink->Rows(ci, frame, info, y0, y1, rows);
+      };
+      unit.outputs.clear();
+      unit.extra = json::object();
+      unit.done = RunNormalsInto(ctx, *unit.camera, unit.unit_dir, nopt, &unit.outputs, &unit.extra).ok();
+      unit.wall_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+      unit.cpu_s = ProcessCpuSeconds() - c0;
+      MaybeKillAt(fmt::format("fused:normals:{}:{}", ctx.session->Id(), unit.camera->id));
+    }
+  }
+  solvers::CheckResult result;
+  LUMENRIG_RETURN_IF_ERROR((*check)->Finish(&result));
+  return WriteCheckOutputs(ctx, result, outputs, extra);
+}
+
 // ---- normals ----------------------------------------------------------------
 
 io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options) {
@@ -156,19 +201,27 @@ io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* o
   return io::Status::Ok();
 }
 
-io::Status RunNormals(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
-  solvers::NormalsOptions options;
-  LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &options));
-  options.mem_budget_bytes = ctx.mem_budget_bytes;
+io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
+                          const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra) {
   solvers::NormalsResult result;
-  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, ctx.camera->id, options, &result, ctx.threads));
-  const std::string dir = Join(ctx.unit_dir, "normals");
+  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, options, &result, ctx.threads));
+  const std::string dir = Join(unit_dir, "normals");
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
-  LUMENRIG_RETURN_IF_ERROR(solvers::WriteNormalsOutputs(result, dir, Provenance(ctx, "normals"), /*overwrite=*/true));
+  StageUnitContext camera_ctx = ctx;
+  camera_ctx.camera = &camera;
+  LUMENRIG_RETURN_IF_ERROR(
+      solvers::WriteNormalsOutputs(result, dir, Provenance(camera_ctx, "normals"), /*overwrite=*/true));
   for (const auto& name : solvers::NormalsOutputNames(result)) outputs->push_back(Join(dir, name));
   (*extra)["bands"] = result.bands;
   (*extra)["band_rows"] = result.band_rows;
   return io::Status::Ok();
+}
+
+io::Status RunNormals(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
+  solvers::NormalsOptions options;
+  LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &options));
+  options.mem_budget_bytes = ctx.mem_budget_bytes;
+  return RunNormalsInto(ctx, *ctx.camera, ctx.unit_dir, options, outputs, extra);
 }
 
 // ---- matte ------------------------------------------------------------------

@@ -10,6 +10,19 @@
 
 namespace lumenrig::synth::internal {
 
+/// A per-camera normals unit that a check unit solves inside its own reading
+/// pass (one decode of every OLAT frame for both stages). The check fills
+/// outputs/extra and sets done; a unit it could not solve runs on its own.
+struct FusedNormalsUnit {
+  const io::Camera* camera = nullptr;
+  int camera_index = -1;  ///< index into session.cameras
+  std::string unit_dir;   ///< <out>/<session>/<camera>
+  bool done = false;
+  std::vector<std::string> outputs;
+  nlohmann::json extra = nlohmann::json::object();
+  double wall_s = 0, cpu_s = 0;  ///< the solve's share of the check unit (for --stats)
+};
+
 struct StageUnitContext {
   const RunOptions* options = nullptr;
   const io::Session* session = nullptr;
@@ -21,6 +34,9 @@ struct StageUnitContext {
   int64_t mem_budget_bytes = 0;
   uint64_t unit_key = 0;  ///< the unit's key (for resumable outputs)
   std::function<void(double)> progress;
+  /// Check units only: the session's normals units that are due to run (may
+  /// be empty); see FusedNormalsUnit.
+  std::vector<FusedNormalsUnit>* fused_normals = nullptr;
 };
 
 struct StageAdapter {

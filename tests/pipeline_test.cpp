@@ -4,10 +4,13 @@
 // the QA gate; thread-count determinism; MPI sharding.
 #include <filesystem>
 #include <fstream>
+#include <iterator>
 #include <string>
 
 #include <gtest/gtest.h>
+#include <nlohmann/json.hpp>
 
+#include "lumenrig/capture_io/image_io.h"
 #include "test_support.h"
 
 namespace fs = std::filesystem;
@@ -117,6 +120,33 @@ print(checked)
   auto c = RunShell(lumenrig::test::Python() + " " + script + " " + out.path());
   EXPECT_EQ(c.exit_code, 0) << c.out << c.err;
   EXPECT_EQ(c.out, "16\n");
+
+  // The run's check decoded the OLAT frames once for itself and the normals:
+  // its verdict file equals the standalone `lumenrig check` (wall time aside),
+  // and the normals outputs equal the standalone `lumenrig normals`.
+  TempDir alone;
+  auto chk = RunCli("check " + Session(0) + " --json " + (alone / "check.json"));
+  ASSERT_EQ(chk.exit_code, 0) << chk.err;
+  auto load = [](const std::string& path) {
+    std::ifstream in(path);
+    nlohmann::json j = nlohmann::json::parse(in, nullptr, false);
+    if (!j.is_discarded()) j.erase("seconds");
+    return j.dump(1);
+  };
+  EXPECT_EQ(load(out / "kh-bust-03/check/check.json"), load(alone / "check.json"));
+  auto nrm = RunCli("normals " + Session(0) + " --camera cam01 --out " + (alone / "n"));
+  ASSERT_EQ(nrm.exit_code, 0) << nrm.err;
+  auto pixels = [](const std::string& path) {
+    auto image = lumenrig::io::ReadImage(path);
+    EXPECT_TRUE(image.ok()) << path;
+    return image.ok() ? std::string(reinterpret_cast<const char*>(image->data), image->total() * image->elemSize())
+                      : std::string();
+  };
+  for (const char* name : {"normals.exr", "albedo.exr", "confidence.exr", "depth.exr"})
+    EXPECT_EQ(pixels(out / (std::string("kh-bust-03/cam01/normals/") + name)), pixels(alone / (std::string("n/") + name))) << name;
+  std::ifstream stamp(out / "kh-bust-03/stamps/normals.cam01.json");
+  EXPECT_NE(std::string(std::istreambuf_iterator<char>(stamp), {}).find("\"solved_in\": \"check\""), std::string::npos)
+      << "the normals were solved in the check's reading pass";
 }
 
 TEST_F(PipelineTest, KilledRunsResumeToTheSameContent) {
@@ -128,7 +158,10 @@ TEST_F(PipelineTest, KilledRunsResumeToTheSameContent) {
   // Kill points: after some frames were solved (first camera's normals), in
   // the middle of an HDF5 write (assemble), and after the matte of the
   // second session.
-  for (const char* point : {"after:normals:kh-bust-03:cam00", "assemble:mid_write", "after:matte:kh-bust-04:cam01"}) {
+  // "fused:normals" falls inside the check's reading pass, after the first
+  // camera's normals were written and before the check finished.
+  for (const char* point : {"fused:normals:kh-bust-03:cam00", "after:normals:kh-bust-03:cam00", "assemble:mid_write",
+                            "after:matte:kh-bust-04:cam01"}) {
     TempDir out;
     auto killed = RunShell(std::string("LUMENRIG_TEST_KILL_AT=") + point + " NO_COLOR=1 " + LUMENRIG_CLI_PATH + " " +
                            Args(out.path()) + " </dev/null");
@@ -199,9 +232,12 @@ TEST_F(PipelineTest, QaFailStopsLaterStagesUnlessForced) {
   EXPECT_EQ(r.exit_code, 1) << r.out << r.err;
   EXPECT_NE(r.err.find("QA failed"), std::string::npos) << r.err;
   EXPECT_FALSE(fs::exists(out / "kh-bust-03.h5"));
+  // The check solved the normals in its reading pass; a FAIL leaves none.
+  EXPECT_FALSE(fs::exists(out / "kh-bust-03/cam00/normals/normals.exr"));
   auto f = RunCli("run " + bad.path() + "/s --out " + forced.path() + " --stages check,normals,matte,assemble --force");
   EXPECT_EQ(f.exit_code, 0) << f.err;
   EXPECT_TRUE(fs::exists(forced / "kh-bust-03.h5"));
+  EXPECT_TRUE(fs::exists(forced / "kh-bust-03/cam00/normals/normals.exr"));
 }
 
 TEST_F(PipelineTest, BadInputIsOneLineExitTwo) {

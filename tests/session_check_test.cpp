@@ -6,6 +6,7 @@
 #include <cmath>
 #include <filesystem>
 #include <fstream>
+#include <mutex>
 #include <sstream>
 
 #include <gtest/gtest.h>
@@ -14,6 +15,7 @@
 
 #include "../solvers/check_internal.h"
 #include "lumenrig/capture_io/session.h"
+#include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/solvers/session_check.h"
 #include "lumenrig/synth/simulator.h"
 #include "test_support.h"
@@ -135,6 +137,62 @@ TEST(SessionCheck, DeadLightIsNamed) {
   EXPECT_EQ(l->verdict, Verdict::kFail) << Describe(c.result);
   EXPECT_TRUE(MentionsAll(*l, {"cam00", fmt::format("light {}:", light), "dead"})) << Describe(c.result);
   EXPECT_EQ(c.result.verdict, Verdict::kFail);
+}
+
+// The streamed check (pipeline: the normals solve decodes each OLAT frame and
+// hands the rows to the check) gives exactly CheckSession's result, whatever
+// the band partition, and frames streamed only in part are read again.
+TEST(SessionCheck, RowsStreamedFromTheNormalsSolveGiveTheSameResult) {
+  synth::SimOptions sim = Small(5);
+  sim.num_cameras = 2;
+  sim.faults.dead_light = synth::CameraLightTarget{"cam01", FrontLights(sim).first};
+  test::TempDir tmp;
+  const Checked reference = SimulateAndCheck(sim, tmp);
+  nlohmann::json expected = CheckResultToJson(reference.result);
+  expected.erase("seconds");
+  ASSERT_EQ(reference.result.verdict, Verdict::kFail) << "the fault makes the comparison cover findings";
+
+  for (const int threads : {1, 2}) {
+    auto check = StreamedCheck::Begin(reference.session, CheckOptions{}, threads);
+    ASSERT_TRUE(check.ok()) << check.status().message();
+    int streamed_rows = 0;
+    for (int c = 0; c < 2; ++c) {
+      NormalsOptions options;
+      options.ps.method = PsMethod::kLeastSquares;
+      options.integrate_depth = false;
+      options.observer_bytes = (*check)->StreamBytes(c);
+      EXPECT_GT(options.observer_bytes, 0);
+      std::mutex m;
+      options.on_decoded_rows = [&](int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {
+        // Camera 1, frame 2: deliver only its first band (an interrupted
+        // stream); Finish must read that frame itself.
+        if (c == 1 && frame == 2 && y0 > 0) return;
+        (*check)->Rows(c, frame, info, y0, y1, rows);
+        std::lock_guard<std::mutex> lock(m);
+        streamed_rows += y1 - y0;
+      };
+      // The smallest budget the view accepts (the stage refuses a smaller
+      // one before reading anything): several bands per frame.
+      NormalsResult r;
+      io::Status st;
+      for (options.mem_budget_bytes = int64_t{64} << 20; options.mem_budget_bytes < (int64_t{256} << 20);
+           options.mem_budget_bytes += int64_t{1} << 19) {
+        st = SolveNormals(reference.session, reference.session.cameras[c].id, options, &r, threads);
+        if (st.ok()) break;
+      }
+      ASSERT_TRUE(st.ok()) << st.message();
+      EXPECT_GT(r.bands, 1) << "several bands per frame";
+    }
+    EXPECT_GT(streamed_rows, 0);
+    CheckResult streamed;
+    ASSERT_TRUE((*check)->Finish(&streamed).ok());
+    nlohmann::json got = CheckResultToJson(streamed);
+    got.erase("seconds");
+    EXPECT_EQ(got.dump(1), expected.dump(1)) << "threads " << threads;
+    ASSERT_EQ(streamed.frames.size(), reference.result.frames.size());
+    for (size_t i = 0; i < streamed.frames.size(); ++i)
+      EXPECT_EQ(streamed.frames[i].thumbnail_png, reference.result.frames[i].thumbnail_png) << i;
+  }
 }
 
 TEST(SessionCheck, MissingFrameIsAFailNotACrash) {

@@ -6,12 +6,14 @@
 /// the normals. Used by `lumenrig normals` and by the demo.
 
 #include <cstdint>
+#include <functional>
 #include <map>
 #include <string>
 #include <vector>
 
 #include <opencv2/core.hpp>
 
+#include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/capture_io/status.h"
 #include "lumenrig/solvers/integration.h"
@@ -34,6 +36,13 @@ struct NormalsOptions {
   /// pixels is below this (degrees) or after max iterations.
   double near_field_tolerance_deg = 0.05;
   int near_field_max_iterations = 10;
+  /// Called with every OLAT frame's decoded rows on the first pass, before
+  /// dark subtraction and normalisation (frame = index into the camera's olat
+  /// list): each frame's rows in order from row 0, frames concurrently. Lets
+  /// another consumer (the session check in `lumenrig run`) share the decode.
+  std::function<void(int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows)> on_decoded_rows;
+  /// Bytes the on_decoded_rows consumer holds; taken off the band budget.
+  int64_t observer_bytes = 0;
 };
 
 /// Validates ranges (budget > 0, tolerances); message names the option.

@@ -11,12 +11,15 @@
 #include <cstdint>
 #include <functional>
 #include <limits>
+#include <memory>
 #include <string>
 #include <vector>
 
 #include <Eigen/Core>
 #include <nlohmann/json.hpp>
+#include <opencv2/core.hpp>
 
+#include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/capture_io/status.h"
 
@@ -198,6 +201,47 @@ struct CheckResult {
 /// Status only for bad options or a session that cannot be checked at all.
 /// threads: 0 = all cores. Output is identical for any thread count.
 io::Status CheckSession(const io::Session& session, const CheckOptions& options, CheckResult* result, int threads = 0);
+
+namespace check_detail {
+struct ScanState;
+struct ScanStateDeleter {
+  void operator()(ScanState* state) const;
+};
+}  // namespace check_detail
+
+/// The check split around its OLAT reading pass, for a caller that decodes
+/// every OLAT frame anyway (the pipeline's normals solve), so that a run
+/// decodes each frame once: Begin() reads the per-camera reference frames,
+/// the caller streams each camera's decoded OLAT rows into Rows(), and
+/// Finish() reads only the frames that were not streamed completely, then
+/// runs every check. The result is identical to CheckSession(), which is
+/// Begin() + Finish() with nothing streamed.
+class StreamedCheck {
+ public:
+  static io::Expected<std::unique_ptr<StreamedCheck>> Begin(const io::Session& session, const CheckOptions& options,
+                                                            int threads = 0);
+  ~StreamedCheck();
+  StreamedCheck(const StreamedCheck&) = delete;
+  StreamedCheck& operator=(const StreamedCheck&) = delete;
+
+  /// Rows [y0, y1) of OLAT frame `frame` (index into the camera's olat list)
+  /// of camera `camera` (index into session.cameras), decoded with the
+  /// session's io::DecodeOptionsFor (CV_32FC1 or CV_32FC3, before any dark
+  /// subtraction); `info` is the frame's reader info. Each frame's rows must
+  /// arrive in order from row 0 (a frame whose rows do not is read again by
+  /// Finish); different frames may arrive concurrently from different threads.
+  void Rows(int camera, int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows);
+  /// Bytes the check holds while camera `camera`'s frames are streamed in
+  /// (per-frame accumulators), for the caller's memory plan.
+  int64_t StreamBytes(int camera) const;
+  /// Reads what was not streamed and runs every check.
+  io::Status Finish(CheckResult* result);
+
+ private:
+  StreamedCheck() = default;
+  struct Parts;
+  std::unique_ptr<Parts> parts_;
+};
 
 /// A camera's id and the rotation taking rig directions to its frame.
 struct CameraPose {
