@@ -112,21 +112,32 @@ cv::Mat FrankotChellappa(const Field& f, int threads) {
   return z(cv::Rect(0, 0, w, h)).clone();
 }
 
-/// Least-squares fit of forward differences on edges between valid pixels
-/// to the mean of the two pixels' gradients, plus a tiny ridge (1e-9) that
-/// makes the normal equations definite (each connected part floats freely).
-cv::Mat Poisson(const Field& f, const IntegrationOptions& o, std::string* method) {
+/// The masked Poisson system: least-squares fit of forward differences on
+/// edges between valid pixels to the mean of the two pixels' gradients, plus a
+/// tiny ridge (1e-9) that makes the normal equations definite (each connected
+/// part floats freely).
+struct PoissonSystem {
+  cv::Mat index;  // CV_32S, unknown of each valid pixel, -1 elsewhere
+  int count = 0;
+  Eigen::SparseMatrix<double> a;
+  Eigen::VectorXd rhs;
+};
+
+PoissonSystem BuildPoisson(const Field& f) {
+  PoissonSystem sys;
   const int h = f.p.rows, w = f.p.cols;
-  cv::Mat index(h, w, CV_32S, cv::Scalar(-1));
+  sys.index = cv::Mat(h, w, CV_32S, cv::Scalar(-1));
   int count = 0;
   for (int v = 0; v < h; ++v)
     for (int u = 0; u < w; ++u)
-      if (f.valid.at<uint8_t>(v, u)) index.at<int>(v, u) = count++;
-  cv::Mat z = cv::Mat::zeros(h, w, CV_32F);
-  if (count == 0) return z;
+      if (f.valid.at<uint8_t>(v, u)) sys.index.at<int>(v, u) = count++;
+  sys.count = count;
+  if (count == 0) return sys;
+  const cv::Mat& index = sys.index;
   std::vector<Eigen::Triplet<double>> triplets;
   triplets.reserve(static_cast<size_t>(count) * 5);
-  Eigen::VectorXd rhs = Eigen::VectorXd::Zero(count);
+  Eigen::VectorXd& rhs = sys.rhs;
+  rhs = Eigen::VectorXd::Zero(count);
   std::vector<double> diag(static_cast<size_t>(count), 1e-9);
   auto edge = [&](int a, int b, double g) {  // f[b] - f[a] = g
     diag[static_cast<size_t>(a)] += 1;
@@ -147,28 +158,105 @@ cv::Mat Poisson(const Field& f, const IntegrationOptions& o, std::string* method
     }
   }
   for (int i = 0; i < count; ++i) triplets.emplace_back(i, i, diag[static_cast<size_t>(i)]);
-  Eigen::SparseMatrix<double> a(count, count);
-  a.setFromTriplets(triplets.begin(), triplets.end());
-  triplets.clear();
-  triplets.shrink_to_fit();
+  sys.a.resize(count, count);
+  sys.a.setFromTriplets(triplets.begin(), triplets.end());
+  return sys;
+}
+
+/// The field on a grid twice as coarse: a coarse pixel is valid when any of
+/// its four fine pixels is, with their mean gradient scaled to the coarse
+/// spacing (x2), so depth keeps its unit.
+Field Coarsen(const Field& f) {
+  Field c;
+  const int h = f.p.rows, w = f.p.cols, ch = (h + 1) / 2, cw = (w + 1) / 2;
+  c.p = cv::Mat::zeros(ch, cw, CV_32F);
+  c.q = cv::Mat::zeros(ch, cw, CV_32F);
+  c.valid = cv::Mat::zeros(ch, cw, CV_8U);
+  c.metric = f.metric;
+  for (int v = 0; v < ch; ++v)
+    for (int u = 0; u < cw; ++u) {
+      double sp = 0, sq = 0;
+      int n = 0;
+      for (int dv = 0; dv < 2; ++dv)
+        for (int du = 0; du < 2; ++du) {
+          const int fv = 2 * v + dv, fu = 2 * u + du;
+          if (fv >= h || fu >= w || !f.valid.at<uint8_t>(fv, fu)) continue;
+          sp += f.p.at<float>(fv, fu);
+          sq += f.q.at<float>(fv, fu);
+          ++n;
+        }
+      if (n < 4) continue;
+      c.valid.at<uint8_t>(v, u) = 1;
+      c.p.at<float>(v, u) = static_cast<float>(2.0 * sp / n);
+      c.q.at<float>(v, u) = static_cast<float>(2.0 * sq / n);
+    }
+  return c;
+}
+
+/// Integrates the field over its valid pixels. Up to
+/// direct_solver_max_pixels unknowns: sparse Cholesky (exact). Larger masks:
+/// cascadic conjugate gradients (Deuflhard, "Cascadic conjugate gradient
+/// methods for elliptic partial differential equations", 1994): the problem
+/// is solved on a grid twice as coarse (recursively, down to the direct
+/// solver), the coarse depth is carried to this grid to first order (coarse
+/// value plus this grid's gradients times the offset from the coarse pixel's
+/// centre), and conjugate gradients start from there, so the few iterations
+/// left only remove fine-scale error.
+cv::Mat Poisson(const Field& f, const IntegrationOptions& o, std::string* method) {
+  const int h = f.p.rows, w = f.p.cols;
+  cv::Mat z = cv::Mat::zeros(h, w, CV_32F);
+  const PoissonSystem sys = BuildPoisson(f);
+  if (sys.count == 0) return z;
   Eigen::VectorXd x;
-  if (count <= o.direct_solver_max_pixels) {
-    Eigen::SimplicialLDLT<Eigen::SparseMatrix<double>> ldlt(a);
-    x = ldlt.solve(rhs);
+  if (sys.count <= o.direct_solver_max_pixels || std::min(h, w) < 16) {
+    Eigen::SimplicialLDLT<Eigen::SparseMatrix<double>> ldlt(sys.a);
+    x = ldlt.solve(sys.rhs);
     *method = "poisson-ldlt";
   } else {
+    const Field coarse = Coarsen(f);
+    std::string coarse_method;
+    const cv::Mat zc = Poisson(coarse, o, &coarse_method);
+    Eigen::VectorXd guess(sys.count);
+    for (int v = 0; v < h; ++v)
+      for (int u = 0; u < w; ++u) {
+        const int i = sys.index.at<int>(v, u);
+        if (i < 0) continue;
+        // The nearest valid coarse pixel (its own, else a neighbour's).
+        int cv_ = v / 2, cu = u / 2;
+        if (!coarse.valid.at<uint8_t>(cv_, cu)) {
+          int best = -1;
+          double best_d = 1e30;
+          for (int dv = -2; dv <= 2; ++dv)
+            for (int du = -2; du <= 2; ++du) {
+              const int nv = v / 2 + dv, nu = u / 2 + du;
+              if (nv < 0 || nu < 0 || nv >= coarse.valid.rows || nu >= coarse.valid.cols ||
+                  !coarse.valid.at<uint8_t>(nv, nu))
+                continue;
+              const double d = (2 * nv + 0.5 - v) * (2 * nv + 0.5 - v) + (2 * nu + 0.5 - u) * (2 * nu + 0.5 - u);
+              if (d < best_d) best_d = d, best = nv * coarse.valid.cols + nu;
+            }
+          if (best < 0) {
+            guess[i] = 0.0;
+            continue;
+          }
+          cv_ = best / coarse.valid.cols;
+          cu = best % coarse.valid.cols;
+        }
+        guess[i] = zc.at<float>(cv_, cu) + f.p.at<float>(v, u) * (u - (2 * cu + 0.5)) +
+                   f.q.at<float>(v, u) * (v - (2 * cv_ + 0.5));
+      }
     Eigen::ConjugateGradient<Eigen::SparseMatrix<double>, Eigen::Lower | Eigen::Upper,
                              Eigen::IncompleteCholesky<double>>
         cg;
-    cg.setTolerance(1e-7);
-    cg.setMaxIterations(4000);
-    cg.compute(a);
-    x = cg.solve(rhs);
-    *method = "poisson-cg";
+    cg.setTolerance(o.cg_tolerance);
+    cg.setMaxIterations(o.cg_max_iterations);
+    cg.compute(sys.a);
+    x = cg.solveWithGuess(sys.rhs, guess);
+    *method = "poisson-cascadic-cg";
   }
   for (int v = 0; v < h; ++v)
     for (int u = 0; u < w; ++u) {
-      const int i = index.at<int>(v, u);
+      const int i = sys.index.at<int>(v, u);
       if (i >= 0) z.at<float>(v, u) = static_cast<float>(x[i]);
     }
   return z;

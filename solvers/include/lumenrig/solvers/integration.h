@@ -41,15 +41,21 @@ struct IntegrationOptions {
   /// Normals with nz (or -n.r/|r|) below this are clamped to it, so grazing
   /// rims do not produce unbounded slopes (common practice).
   double min_nz = 0.05;
-  /// Masks with more valid pixels than this use conjugate gradients instead
-  /// of the sparse Cholesky factorisation (memory).
-  int direct_solver_max_pixels = 400000;
+  /// Masks with more valid pixels than this are solved by cascadic conjugate
+  /// gradients (a coarser grid solved first, recursively, down to this size)
+  /// instead of one sparse Cholesky factorisation, whose fill-in needs about
+  /// 650 bytes per pixel (the normals stage sets this from --mem-budget).
+  int direct_solver_max_pixels = 1500000;
+  /// Conjugate gradients (incomplete Cholesky preconditioner) on each finer
+  /// grid: relative residual tolerance and iteration cap (common practice).
+  double cg_tolerance = 1e-7;
+  int cg_max_iterations = 2000;
 };
 
 struct DepthMap {
   cv::Mat depth;       ///< CV_32FC1; 0 at invalid pixels
   std::string unit;    ///< "pixels" or "metres"
-  std::string method;  ///< "frankot-chellappa" or "poisson-ldlt" / "poisson-cg"
+  std::string method;  ///< "frankot-chellappa", "poisson-ldlt" or "poisson-cascadic-cg"
 };
 
 /// Integrates `normals` (CV_32FC3) over `mask` (CV_8U, non-zero = valid; empty
