@@ -5,17 +5,21 @@
 #   bench/normals_stage_bench.sh BUILD_DIR [SIZE] [LIGHTS] [THREADS]
 #
 # Defaults: a 2048x2048 view with 156 lights (half ZIP EXR, about 2 GB in
-# /tmp/lumenrig-normals-bench). Prints the decode time (every frame read
-# through io::BandReader, as the stage does), then for 1G and 4G budgets
-# and both methods the stage's own summary, its peak RSS, and the ratio of
-# the stage's wall time to the decode time.
+# /tmp/lumenrig-normals-bench; a sphere on a plane, no mask, so depth is
+# Frankot-Chellappa). SESSION=DIR uses an existing session instead (its first
+# camera), e.g. one from `lumenrig simulate --size 2048x2048 --lights 156`,
+# whose bust has a mask (depth by masked Poisson). Prints the decode time
+# (every frame read through io::BandReader, as the stage does), then for 1G
+# and 4G budgets and both methods the stage's own summary, its peak RSS, and
+# the ratio of the stage's wall time to the decode time.
 set -eu
 build=$1
 size=${2:-2048}
 lights=${3:-156}
 threads=${4:-2}
-dir=/tmp/lumenrig-normals-bench/view${size}x${lights}
+dir=${SESSION:-/tmp/lumenrig-normals-bench/view${size}x${lights}}
 out=/tmp/lumenrig-normals-bench/out
+mkdir -p /tmp/lumenrig-normals-bench
 [ -f "$dir/session.json" ] || "$build/bench/normals_bench" --make-session "$dir" "$size" "$lights"
 du -sh "$dir"
 line=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16)

@@ -592,7 +592,9 @@ io::Status ScanBegin(const io::Session& session, const CheckOptions& options, Ch
       // Clean plate vs backlit: sub-pixel shift on the background texture.
       if (!plate_lum.empty() && !backlit.empty()) {
         cv::Mat back_lum = Luminance(backlit);
-        const int f = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / 2048.0)));
+        // At most 1024 px a side: sub-pixel precision holds after the x f
+        // scaling and full-size Lucas-Kanade would cost more than the frames.
+        const int f = std::max(1, static_cast<int>(std::ceil(std::max(ctx.width, ctx.height) / 1024.0)));
         cv::Mat a = ReduceBy(plate_lum, f), bb = ReduceBy(back_lum, f);
         // The subject only darkens the backdrop in the backlit frame: pixels
         // below 80% of the clean plate (partial coverage, hair) are left out

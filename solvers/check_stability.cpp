@@ -16,7 +16,7 @@ namespace {
 /// Weighted Lucas-Kanade (Gauss-Newton on a pure translation) from `d`:
 /// moved(x + d) ~ reference(x). Returns the weighted mean squared residual.
 double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, cv::Point2d* d) {
-  cv::Mat warped, gx, gy, res;
+  cv::Mat warped, gx, gy;
   double err = std::numeric_limits<double>::infinity();
   const double wsum = std::max(1e-12, cv::sum(win)[0]);
   for (int iter = 0; iter < 30; ++iter) {
@@ -24,11 +24,28 @@ double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, c
     cv::warpAffine(mov, warped, m, mov.size(), cv::INTER_LINEAR | cv::WARP_INVERSE_MAP, cv::BORDER_REPLICATE);
     cv::Sobel(warped, gx, CV_32F, 1, 0, 3, 1.0 / 8.0);
     cv::Sobel(warped, gy, CV_32F, 0, 1, 3, 1.0 / 8.0);
-    res = warped - ref;
-    err = cv::sum(win.mul(res.mul(res)))[0] / wsum;
-    const double a = cv::sum(win.mul(gx.mul(gx)))[0], b = cv::sum(win.mul(gx.mul(gy)))[0],
-                 c = cv::sum(win.mul(gy.mul(gy)))[0];
-    const double u = cv::sum(win.mul(gx.mul(res)))[0], v = cv::sum(win.mul(gy.mul(res)))[0];
+    // The weighted sums of the normal equations in one pass (no full-size
+    // temporaries: at 2048x2048 they cost more in page faults than in maths).
+    double e = 0, a = 0, b = 0, c = 0, u = 0, v = 0;
+    for (int y = 0; y < ref.rows; ++y) {
+      const float* pw = warped.ptr<float>(y);
+      const float* pr = ref.ptr<float>(y);
+      const float* pg = gx.ptr<float>(y);
+      const float* ph = gy.ptr<float>(y);
+      const float* pn = win.ptr<float>(y);
+      double re = 0, ra = 0, rb = 0, rc = 0, ru = 0, rv = 0;
+      for (int x = 0; x < ref.cols; ++x) {
+        const double w = pn[x], r = pw[x] - pr[x], g = pg[x], h = ph[x];
+        re += w * r * r;
+        ra += w * g * g;
+        rb += w * g * h;
+        rc += w * h * h;
+        ru += w * g * r;
+        rv += w * h * r;
+      }
+      e += re, a += ra, b += rb, c += rc, u += ru, v += rv;
+    }
+    err = e / wsum;
     const double det = a * c - b * b;
     if (!(det > 1e-12 * (a * c + 1e-30))) break;
     double sx = -(c * u - b * v) / det, sy = -(a * v - b * u) / det;
