@@ -31,12 +31,11 @@ io::Status ScanSession(const io::Session& session, const CheckOptions& options, 
 /// reads only what was not streamed completely. ScanSession = both halves.
 /// Per camera, the reference geometry, mask and aux frames (phase A); *result
 /// and *integrity must outlive the state.
-io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result,
-                     CheckLine* integrity, int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state);
+io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result, CheckLine* integrity,
+                     int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state);
 /// Decoded rows [y0, y1) of OLAT frame `frame` of camera `camera`; see
 /// StreamedCheck::Rows.
-void ScanRows(ScanState* state, int camera, int frame, const io::ImageInfo& info, int y0, int y1,
-              const cv::Mat& rows);
+void ScanRows(ScanState* state, int camera, int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows);
 /// Accumulator bytes while camera `camera`'s OLAT frames are streamed.
 int64_t ScanStreamBytes(const ScanState& state, int camera);
 /// Every frame not yet summarised (phase B).

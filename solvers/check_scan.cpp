@@ -194,8 +194,7 @@ class FrameScanner {
     }
     // Gaussian noise: E|d| = sigma * sqrt(6) * sqrt(2/pi) for the [1,-2,1] kernel
     // (the 1-D form of Immerkaer, "Fast noise variance estimation", CVIU 1996).
-    if (n_d_ > 0)
-      s->noise_sigma = std::sqrt(M_PI / 2.0) * (sum_abs_d_ / static_cast<double>(n_d_)) / std::sqrt(6.0);
+    if (n_d_ > 0) s->noise_sigma = std::sqrt(M_PI / 2.0) * (sum_abs_d_ / static_cast<double>(n_d_)) / std::sqrt(6.0);
     s->snr_db = (s->noise_sigma > 0 && s->mean > 0) ? 20.0 * std::log10(s->mean / s->noise_sigma) : 0.0;
 
     // Analysis grid.
@@ -398,8 +397,8 @@ struct ScanState {
   double saturation = 1.0;
   std::vector<CameraContext> contexts;
   std::vector<FrameJob> jobs;
-  std::vector<int> olat_offset;  // per camera, index of its first OLAT job
-  std::vector<char> scanned;     // frames already summarised (phase A or streamed)
+  std::vector<int> olat_offset;                        // per camera, index of its first OLAT job
+  std::vector<char> scanned;                           // frames already summarised (phase A or streamed)
   std::vector<std::unique_ptr<FrameScanner>> streams;  // per job, while rows are streamed in
   std::mutex progress_mutex;
   int done = 0;
@@ -410,8 +409,8 @@ struct ScanState {
   }
 };
 
-io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result,
-                     CheckLine* integrity, int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state_out) {
+io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result, CheckLine* integrity,
+                     int threads, std::unique_ptr<ScanState, ScanStateDeleter>* state_out) {
   std::unique_ptr<ScanState, ScanStateDeleter> state(new ScanState());
   ScanState& st = *state;
   st.session = &session;

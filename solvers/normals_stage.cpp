@@ -232,18 +232,19 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const int64_t reader_bytes = keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
                                          : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
   const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
-  // Depth: Frankot-Chellappa over the frame without a mask; with one, the
-  // masked Poisson system is solved directly when its factorisation fits the
-  // budget, by cascadic conjugate gradients otherwise (less memory, slower).
+  // Depth: Frankot-Chellappa over the frame without a mask; with one, masked
+  // Poisson, by sparse Cholesky up to IntegrationOptions'
+  // direct_solver_max_pixels mask pixels, cascadic conjugate gradients above.
+  // The choice depends on the mask only (never on the budget, which must not
+  // change outputs); a budget too small for it is refused below.
   const int64_t mask_px = mask.empty() ? px : cv::countNonZero(mask);
   const bool poisson = mask_px < px;
-  int64_t direct_max_px = 0;
+  const int64_t direct_max_px = IntegrationOptions{}.direct_solver_max_pixels;
   int64_t integrate_bytes = 0;
   if (options.integrate_depth) {
     if (!poisson) {
       integrate_bytes = fixed + px * kIntegrationBytesPerPixel;
     } else {
-      direct_max_px = std::max<int64_t>(0, (options.mem_budget_bytes - fixed) / kLdltBytesPerUnknown);
       integrate_bytes = fixed + mask_px * (mask_px <= direct_max_px ? kLdltBytesPerUnknown : kCgBytesPerUnknown);
     }
   }

@@ -143,7 +143,9 @@ print(checked)
                       : std::string();
   };
   for (const char* name : {"normals.exr", "albedo.exr", "confidence.exr", "depth.exr"})
-    EXPECT_EQ(pixels(out / (std::string("kh-bust-03/cam01/normals/") + name)), pixels(alone / (std::string("n/") + name))) << name;
+    EXPECT_EQ(pixels(out / (std::string("kh-bust-03/cam01/normals/") + name)),
+              pixels(alone / (std::string("n/") + name)))
+        << name;
   std::ifstream stamp(out / "kh-bust-03/stamps/normals.cam01.json");
   EXPECT_NE(std::string(std::istreambuf_iterator<char>(stamp), {}).find("\"solved_in\": \"check\""), std::string::npos)
       << "the normals were solved in the check's reading pass";

@@ -44,8 +44,9 @@ struct IntegrationOptions {
   /// Masks with more valid pixels than this are solved by cascadic conjugate
   /// gradients (a coarser grid solved first, recursively, down to this size)
   /// instead of one sparse Cholesky factorisation, whose fill-in needs about
-  /// 650 bytes per pixel (the normals stage sets this from --mem-budget).
-  int direct_solver_max_pixels = 1500000;
+  /// 650 bytes per pixel (the normals stage plans its budget with it). The
+  /// default covers a 12 MP view with half of it masked.
+  int direct_solver_max_pixels = 6000000;
   /// Conjugate gradients (incomplete Cholesky preconditioner) on each finer
   /// grid: relative residual tolerance and iteration cap (common practice).
   double cg_tolerance = 1e-7;
