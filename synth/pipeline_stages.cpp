@@ -9,6 +9,9 @@
 #include <filesystem>
 #include <fstream>
 #include <map>
+#include <memory>
+
+#include <tbb/task_group.h>
 
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/content_hash.h"
@@ -143,8 +146,8 @@ io::Status WriteCheckOutputs(const StageUnitContext& ctx, const solvers::CheckRe
   return io::Status::Ok();
 }
 
-io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
-                          const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra);
+io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
+                              const solvers::NormalsResult& result, std::vector<std::string>* outputs, json* extra);
 io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options);
 
 double ProcessCpuSeconds() {
@@ -165,25 +168,69 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
   // outputs are kept only if the verdict lets later stages run (the executor
   // removes them otherwise). A camera whose solve fails is left to its own
   // unit, which reports the error; the check reads its frames itself.
+  //
+  // Each camera's depth integration (single-threaded sparse Cholesky) and
+  // output writes run as a task while the next camera's frames are read,
+  // when the unit's budget holds both; otherwise the next camera waits.
   if (ctx.fused_normals != nullptr) {
-    for (FusedNormalsUnit& unit : *ctx.fused_normals) {
-      const auto t0 = std::chrono::steady_clock::now();
-      const double c0 = ProcessCpuSeconds();
+    std::vector<FusedNormalsUnit>& units = *ctx.fused_normals;
+    tbb::task_group finishing;
+    int pending = -1;           // unit whose finishing task may still run
+    int64_t pending_bytes = 0;  // what that task holds
+    auto wait_pending = [&]() {
+      if (pending < 0) return;
+      finishing.wait();
+      MaybeKillAt(
+          fmt::format("fused:normals:{}:{}", ctx.session->Id(), units[static_cast<size_t>(pending)].camera->id));
+      pending = -1;
+      pending_bytes = 0;
+    };
+    const auto t0 = std::chrono::steady_clock::now();
+    const double c0 = ProcessCpuSeconds();
+    for (FusedNormalsUnit& unit : units) {
       solvers::NormalsOptions nopt;
       LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &nopt));
-      nopt.mem_budget_bytes = ctx.mem_budget_bytes;
       nopt.observer_bytes = (*check)->StreamBytes(unit.camera_index);
+      nopt.defer_depth = true;
       solvers::StreamedCheck* sink = check->get();
       const int ci = unit.camera_index;
       nopt.on_decoded_rows = [sink, ci](int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {
         sink->Rows(ci, frame, info, y0, y1, rows);
       };
+      auto result = std::make_shared<solvers::NormalsResult>();
+      io::Status st = io::Status::BadInput("not run");
+      if (pending >= 0 && ctx.mem_budget_bytes - pending_bytes > 0) {
+        // Overlap with the previous camera's depth when the budget left holds
+        // this camera's plan (the stage refuses before reading otherwise).
+        nopt.mem_budget_bytes = ctx.mem_budget_bytes - pending_bytes;
+        st = solvers::SolveNormals(*ctx.session, unit.camera->id, nopt, result.get(), ctx.threads);
+      }
+      if (!st.ok()) {
+        wait_pending();
+        *result = solvers::NormalsResult();
+        nopt.mem_budget_bytes = ctx.mem_budget_bytes;
+        st = solvers::SolveNormals(*ctx.session, unit.camera->id, nopt, result.get(), ctx.threads);
+      }
+      wait_pending();
       unit.outputs.clear();
       unit.extra = json::object();
-      unit.done = RunNormalsInto(ctx, *unit.camera, unit.unit_dir, nopt, &unit.outputs, &unit.extra).ok();
-      unit.wall_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-      unit.cpu_s = ProcessCpuSeconds() - c0;
-      MaybeKillAt(fmt::format("fused:normals:{}:{}", ctx.session->Id(), unit.camera->id));
+      unit.done = false;
+      if (!st.ok()) continue;  // left to the camera's own unit, which reports the error
+      pending = static_cast<int>(&unit - units.data());
+      pending_bytes = result->depth_bytes;
+      finishing.run([&ctx, &unit, result]() {
+        unit.done = solvers::IntegrateDepth(result.get(), ctx.threads).ok() &&
+                    WriteNormalsResult(ctx, *unit.camera, unit.unit_dir, *result, &unit.outputs, &unit.extra).ok();
+      });
+    }
+    wait_pending();
+    // The solves' time (reading, shared with the check's statistics, solving,
+    // depth, writes) is booked to the normals stage, shared by camera.
+    const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+    const double cpu = ProcessCpuSeconds() - c0;
+    for (auto& unit : units) {
+      unit.wall_s = wall / static_cast<double>(units.size());
+      unit.cpu_s = cpu / static_cast<double>(units.size());
     }
   }
   solvers::CheckResult result;
@@ -201,10 +248,8 @@ io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* o
   return io::Status::Ok();
 }
 
-io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
-                          const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra) {
-  solvers::NormalsResult result;
-  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, options, &result, ctx.threads));
+io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
+                              const solvers::NormalsResult& result, std::vector<std::string>* outputs, json* extra) {
   const std::string dir = Join(unit_dir, "normals");
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
   StageUnitContext camera_ctx = ctx;
@@ -215,6 +260,13 @@ io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera,
   (*extra)["bands"] = result.bands;
   (*extra)["band_rows"] = result.band_rows;
   return io::Status::Ok();
+}
+
+io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
+                          const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra) {
+  solvers::NormalsResult result;
+  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, options, &result, ctx.threads));
+  return WriteNormalsResult(ctx, camera, unit_dir, result, outputs, extra);
 }
 
 io::Status RunNormals(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {

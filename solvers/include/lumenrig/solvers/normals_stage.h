@@ -43,6 +43,10 @@ struct NormalsOptions {
   std::function<void(int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows)> on_decoded_rows;
   /// Bytes the on_decoded_rows consumer holds; taken off the band budget.
   int64_t observer_bytes = 0;
+  /// With integrate_depth: plan the depth but leave it to IntegrateDepth()
+  /// (a caller that overlaps one camera's integration with the next one's
+  /// reading).
+  bool defer_depth = false;
 };
 
 /// Validates ranges (budget > 0, tolerances); message names the option.
@@ -66,7 +70,16 @@ struct NormalsResult {
   double near_field_change_deg = 0.0;
   double read_seconds = 0, solve_seconds = 0, integrate_seconds = 0;  ///< wall
   double read_cpu_seconds = 0, solve_cpu_seconds = 0;                 ///< process CPU time (all threads)
+  /// Depth left to IntegrateDepth() (NormalsOptions::defer_depth): its
+  /// settings and the peak memory it needs (maps included).
+  bool depth_pending = false;
+  IntegrationOptions depth_options;
+  int64_t depth_bytes = 0;
 };
+
+/// Runs the depth integration SolveNormals planned and deferred
+/// (result->depth_pending); no-op otherwise.
+io::Status IntegrateDepth(NormalsResult* result, int threads = 0);
 
 /// Solves `camera_id` ("" = the first camera) of `session`.
 /// Frames: black level and encoding from the session (io::DecodeOptionsFor),
