@@ -1,15 +1,14 @@
 // `lumenrig normals`: photometric stereo normals, albedo, confidence and
 // depth for one camera of a session (solvers/normals_stage.h).
-#include <sys/resource.h>
 #include <chrono>
 #include <cstdio>
-#include <ctime>
 #include <filesystem>
 
 #include <fmt/format.h>
 
 #include "command.h"
 #include "lumenrig/capture_io/byte_size.h"
+#include "lumenrig/capture_io/process_stats.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/solvers/normals_stage.h"
 
@@ -28,22 +27,9 @@ struct NormalsArgs {
   double reference_depth_m = 0.0;
 };
 
-double PeakRssMib() {
-  rusage usage{};
-  getrusage(RUSAGE_SELF, &usage);
-  return usage.ru_maxrss / 1024.0;  // ru_maxrss is in KiB on Linux
-}
-
-/// CPU time of the whole process (all threads), seconds.
-double ProcessCpuSeconds() {
-  timespec ts{};
-  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
-  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
-}
-
 int RunNormals(const NormalsArgs& a) {
   const auto start = std::chrono::steady_clock::now();
-  const double start_cpu = ProcessCpuSeconds();
+  const double start_cpu = io::ProcessCpuSeconds();
   const char* name = "normals";
   auto method = solvers::ParsePsMethod(a.method);
   if (!method.ok()) return ReportError(name, method.status());
@@ -87,11 +73,11 @@ int RunNormals(const NormalsArgs& a) {
                         : "",
       write_s);
   const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
-  const double stage_cpu = ProcessCpuSeconds() - start_cpu;
+  const double stage_cpu = io::ProcessCpuSeconds() - start_cpu;
   fmt::print("cpu time: read {:.2f} s, solve {:.2f} s, depth, write and the rest {:.2f} s, stage {:.2f} s\n",
              result.read_cpu_seconds, result.solve_cpu_seconds,
              stage_cpu - result.read_cpu_seconds - result.solve_cpu_seconds, stage_cpu);
-  fmt::print("normals: wall {:.2f} s, peak RSS {:.0f} MiB\n", wall, PeakRssMib());
+  fmt::print("normals: wall {:.2f} s, peak RSS {:.0f} MiB\n", wall, io::PeakRssMib());
   return 0;
 }
 

@@ -1,7 +1,6 @@
 // `lumenrig simulate`: writes a simulated OLAT session of the Kestrel Hollow
 // Studio scene (plaster bust kh-bust-03 and a grey reference sphere) with
 // ground truth and optional injected faults.
-#include <sys/resource.h>
 #include <unistd.h>
 #include <chrono>
 #include <cstdio>
@@ -12,6 +11,7 @@
 #include <fmt/format.h>
 
 #include "command.h"
+#include "lumenrig/capture_io/process_stats.h"
 #include "lumenrig/synth/simulator.h"
 
 namespace lumenrig::cli {
@@ -99,12 +99,6 @@ io::Status BuildOptions(const SimulateArgs& a, synth::SimOptions* o) {
   return synth::ValidateSimOptions(*o);
 }
 
-double PeakRssMiB() {
-  rusage usage{};
-  getrusage(RUSAGE_SELF, &usage);
-  return usage.ru_maxrss / 1024.0;  // Linux: kilobytes
-}
-
 std::function<int()> Setup(CLI::App* sub) {
   auto a = std::make_shared<SimulateArgs>();
   sub->add_option("--out", a->out, "Session folder to write (must be empty or absent unless --force)");
@@ -179,7 +173,7 @@ std::function<int()> Setup(CLI::App* sub) {
         "simulate: {} cameras x {} lights, {}x{}, {} frames written in {:.2f} s ({:.1f} frames/s), peak RSS {:.0f} "
         "MiB\n",
         options.num_cameras, options.num_lights, options.width, options.height, summary.frames_written, seconds,
-        summary.frames_written / seconds, PeakRssMiB());
+        summary.frames_written / seconds, io::PeakRssMib());
     return 0;
   };
 }

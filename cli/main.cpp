@@ -1,6 +1,5 @@
 // lumenrig command-line entry point: parses, dispatches to one registered
 // subcommand, maps errors to the exit codes of DESIGN.md.
-#include <sys/resource.h>
 #include <unistd.h>
 #include <algorithm>
 #include <cstdio>
@@ -10,6 +9,7 @@
 #include <fmt/format.h>
 
 #include "command.h"
+#include "lumenrig/capture_io/process_stats.h"
 
 namespace lumenrig::cli {
 
@@ -32,9 +32,7 @@ bool UseColor() {
 bool StderrIsTerminal() { return isatty(fileno(stderr)) != 0; }
 
 std::string TimeAndMemoryLine(double wall_s) {
-  rusage ru{};
-  getrusage(RUSAGE_SELF, &ru);
-  return fmt::format("{:.2f} s, peak RSS {:.0f} MiB", wall_s, static_cast<double>(ru.ru_maxrss) / 1024.0);
+  return fmt::format("{:.2f} s, peak RSS {:.0f} MiB", wall_s, io::PeakRssMib());
 }
 
 }  // namespace lumenrig::cli

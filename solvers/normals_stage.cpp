@@ -6,7 +6,6 @@
 #include <climits>
 #include <cmath>
 #include <cstdlib>
-#include <ctime>
 #include <filesystem>
 #include <functional>
 #include <memory>
@@ -22,6 +21,7 @@
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/parallel.h"
+#include "lumenrig/capture_io/process_stats.h"
 
 namespace lumenrig::solvers {
 namespace {
@@ -55,13 +55,6 @@ struct BandFree {
 };
 
 double Seconds(Clock::time_point a, Clock::time_point b) { return std::chrono::duration<double>(b - a).count(); }
-
-/// CPU time of the whole process (all threads), seconds.
-double ProcessCpuSeconds() {
-  timespec ts{};
-  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
-  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
-}
 
 std::string Mib(int64_t bytes) { return fmt::format("{:.0f} MiB", bytes / 1048576.0); }
 
@@ -307,7 +300,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       // 1. Read and normalise every frame's rows [y0, y1).
       if (iter == 0 || !single_band) {
         const auto t0 = Clock::now();
-        const double c0 = ProcessCpuSeconds();
+        const double c0 = io::ProcessCpuSeconds();
         if (dark_reader) LUMENRIG_RETURN_IF_ERROR(dark_reader->ReadRows(y0, y1, &dark_band));
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
@@ -345,11 +338,11 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         });
         for (const auto& s : errors) LUMENRIG_RETURN_IF_ERROR(s);
         out->read_seconds += Seconds(t0, Clock::now());
-        out->read_cpu_seconds += ProcessCpuSeconds() - c0;
+        out->read_cpu_seconds += io::ProcessCpuSeconds() - c0;
       }
       // 2. Solve the band in fixed tiles of pixels.
       const auto t1 = Clock::now();
-      const double c1 = ProcessCpuSeconds();
+      const double c1 = io::ProcessCpuSeconds();
       const int64_t band_px = static_cast<int64_t>(band_rows) * width;
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
@@ -367,7 +360,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
       });
       out->solve_seconds += Seconds(t1, Clock::now());
-      out->solve_cpu_seconds += ProcessCpuSeconds() - c1;
+      out->solve_cpu_seconds += io::ProcessCpuSeconds() - c1;
     }
     if (iter == 0) {
       bool all_zero = true;

@@ -10,12 +10,12 @@
 #include <map>
 #include <mutex>
 
-#include <sys/resource.h>
 #include <tbb/flow_graph.h>
 
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/content_hash.h"
 #include "lumenrig/capture_io/parallel.h"
+#include "lumenrig/capture_io/process_stats.h"
 #include "pipeline_stages.h"
 
 namespace fs = std::filesystem;
@@ -84,18 +84,6 @@ std::string ChangedKeys(const json& before, const json& now) {
   for (const auto& [k, v] : before.items())
     if (!now.contains(k)) add(k);
   return keys.empty() ? "options" : keys;
-}
-
-int64_t PeakRssBytes() {
-  rusage ru{};
-  getrusage(RUSAGE_SELF, &ru);
-  return static_cast<int64_t>(ru.ru_maxrss) * 1024;
-}
-
-double ProcessCpuSeconds() {
-  timespec ts{};
-  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
-  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
 }
 
 std::string NowUtc() {
@@ -421,7 +409,7 @@ struct Executor {
     }
 
     const auto t0 = std::chrono::steady_clock::now();
-    const double cpu0 = ProcessCpuSeconds();
+    const double cpu0 = io::ProcessCpuSeconds();
     std::vector<std::string> outputs;
     json extra = json::object();
     io::Status status = io::EnsureDirectory(ctx.unit_dir);
@@ -437,7 +425,7 @@ struct Executor {
     }
     if (status.ok()) status = WriteStamp(unit, session, outputs, extra);
     double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-    double cpu = ProcessCpuSeconds() - cpu0;
+    double cpu = io::ProcessCpuSeconds() - cpu0;
     {
       std::lock_guard<std::mutex> lock(mutex);
       // The fused solves' time counts for the normals stage, not the check.
@@ -455,7 +443,7 @@ struct Executor {
       st.units_run += 1;
       st.wall_s += wall;
       st.cpu_s += cpu;
-      st.peak_rss_bytes = PeakRssBytes();
+      st.peak_rss_bytes = io::PeakRssBytes();
       if (!status.ok() && first_error.ok()) first_error = status;
     }
     if (events->unit_finished) events->unit_finished(unit, status, wall);
@@ -542,7 +530,7 @@ io::Status ExecuteRun(const RunOptions& options, RunPlan* plan, const RunEvents&
   }
   report->qa_failed_sessions = ex.qa_failed;
   report->wall_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-  report->peak_rss_bytes = PeakRssBytes();
+  report->peak_rss_bytes = io::PeakRssBytes();
   for (const auto& s : plan->sessions) {
     for (const char* suffix : {".h5", ".pairs.h5"}) {
       const std::string p = (fs::path(options.out_dir) / (s.Id() + suffix)).string();

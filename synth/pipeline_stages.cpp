@@ -5,7 +5,6 @@
 #include <algorithm>
 #include <chrono>
 #include <cstdio>
-#include <ctime>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -17,6 +16,7 @@
 #include "lumenrig/capture_io/content_hash.h"
 #include "lumenrig/capture_io/hdf5_writer.h"
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/process_stats.h"
 #include "lumenrig/solvers/matte_stage.h"
 #include "lumenrig/solvers/normals_stage.h"
 #include "lumenrig/solvers/session_check.h"
@@ -150,12 +150,6 @@ io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& cam
                               const solvers::NormalsResult& result, std::vector<std::string>* outputs, json* extra);
 io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options);
 
-double ProcessCpuSeconds() {
-  timespec ts{};
-  clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &ts);
-  return static_cast<double>(ts.tv_sec) + 1e-9 * static_cast<double>(ts.tv_nsec);
-}
-
 io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
   solvers::CheckOptions options;
   LUMENRIG_RETURN_IF_ERROR(CheckOptionsFromRun(*ctx.options, &options));
@@ -186,7 +180,7 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
       pending_bytes = 0;
     };
     const auto t0 = std::chrono::steady_clock::now();
-    const double c0 = ProcessCpuSeconds();
+    const double c0 = io::ProcessCpuSeconds();
     for (FusedNormalsUnit& unit : units) {
       solvers::NormalsOptions nopt;
       LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &nopt));
@@ -227,7 +221,7 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
     // The solves' time (reading, shared with the check's statistics, solving,
     // depth, writes) is booked to the normals stage, shared by camera.
     const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-    const double cpu = ProcessCpuSeconds() - c0;
+    const double cpu = io::ProcessCpuSeconds() - c0;
     for (auto& unit : units) {
       unit.wall_s = wall / static_cast<double>(units.size());
       unit.cpu_s = cpu / static_cast<double>(units.size());
