@@ -19,16 +19,14 @@ CheckLine MakeLine(const std::string& key, const std::string& title, const std::
 /// Adds a finding, raises the line's verdict and the frame's flag.
 void AddFinding(CheckLine* line, Finding finding);
 
-/// The single pass: reads mask, dark, clean plate, backlit and lit once per
-/// camera, then every OLAT and tracking frame once (in parallel), filling
-/// result->cameras and result->frames. Problems reading files become FAIL
-/// findings in *integrity (completeness line).
-io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
-                       CheckLine* integrity, int threads);
-
-/// The same pass in two halves around the OLAT frames, so a caller that
-/// decodes them anyway can stream their rows in (ScanRows) and ScanFinish
-/// reads only what was not streamed completely. ScanSession = both halves.
+/// The check's single reading pass, in two halves around the OLAT frames:
+/// ScanBegin reads mask, dark, clean plate, backlit and lit once per camera;
+/// a caller that decodes the OLAT frames anyway streams their rows in
+/// (ScanRows); ScanFinish reads every OLAT and tracking frame not streamed
+/// completely, once, in parallel. Together they fill result->cameras and
+/// result->frames; problems reading files become FAIL findings in
+/// *integrity (completeness line).
+///
 /// Per camera, the reference geometry, mask and aux frames (phase A); *result
 /// and *integrity must outlive the state.
 io::Status ScanBegin(const io::Session& session, const CheckOptions& options, CheckResult* result, CheckLine* integrity,

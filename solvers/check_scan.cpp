@@ -106,6 +106,23 @@ struct FrameJob {
   std::string path;
 };
 
+/// Which frame a summary is about.
+void Identify(const FrameJob& job, FrameSummary* s) {
+  s->kind = job.kind;
+  s->camera = job.camera;
+  s->light = job.light;
+  s->order = job.order;
+  s->path = job.path;
+}
+
+/// What the frame's reader says of it.
+void Describe(const io::ImageInfo& info, FrameSummary* s) {
+  s->width = info.width;
+  s->height = info.height;
+  s->channels = info.channels;
+  s->pixel_type = info.pixel_type;
+}
+
 /// The per-frame reduction of the check, fed with decoded rows in increasing
 /// order (any band partition gives the same result: every sum runs row by
 /// row). Used by ScanFrame for frames the check reads itself, and by the
@@ -118,15 +135,8 @@ class FrameScanner {
   /// Starts a frame of the camera's size (`info` from its reader).
   void Begin(const FrameJob& job, const io::ImageInfo& info, FrameSummary* s) {
     s_ = s;
-    s->kind = job.kind;
-    s->camera = job.camera;
-    s->light = job.light;
-    s->order = job.order;
-    s->path = job.path;
-    s->width = info.width;
-    s->height = info.height;
-    s->channels = info.channels;
-    s->pixel_type = info.pixel_type;
+    Identify(job, s);
+    Describe(info, s);
     W_ = info.width;
     H_ = info.height;
     nc_ = info.channels;
@@ -348,21 +358,14 @@ class FrameScanner {
 /// luminance in *motion (empty otherwise).
 void ScanFrame(const FrameJob& job, const CameraContext& ctx, const io::DecodeOptions& decode,
                const CheckOptions& options, double saturation, FrameSummary* s, cv::Mat* motion) {
-  s->kind = job.kind;
-  s->camera = job.camera;
-  s->light = job.light;
-  s->order = job.order;
-  s->path = job.path;
+  Identify(job, s);
   auto reader = io::BandReader::Open(job.path, decode);
   if (!reader.ok()) {
     s->error = reader.status().message();
     return;
   }
   const io::ImageInfo info = (*reader)->info();
-  s->width = info.width;
-  s->height = info.height;
-  s->channels = info.channels;
-  s->pixel_type = info.pixel_type;
+  Describe(info, s);
   if (info.width != ctx.width || info.height != ctx.height) {
     // Reported by the completeness check; its pixels cannot be compared.
     s->readable = true;
@@ -705,7 +708,6 @@ void ScanRows(ScanState* st, int camera, int frame, const io::ImageInfo& info, i
 
 io::Status ScanFinish(ScanState* state) {
   ScanState& st = *state;
-  const io::Session& session = *st.session;
   const CheckOptions& options = st.options;
   const io::DecodeOptions& decode = st.decode;
   const double saturation = st.saturation;
@@ -716,7 +718,6 @@ io::Status ScanFinish(ScanState* state) {
   const int total = static_cast<int>(jobs.size());
   for (auto& s : st.streams) s.reset();  // frames streamed only in part are read below
   const int threads = st.threads;
-  (void)session;
   // Phase B: every other OLAT and tracking frame once, in parallel across frames.
   io::ParallelFor(0, total, 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t j = b; j < e; ++j) {
@@ -725,11 +726,7 @@ io::Status ScanFinish(ScanState* state) {
       const CameraContext& ctx = contexts[job.camera];
       FrameSummary& s = result->frames[j];
       if (ctx.width == 0) {
-        s.kind = job.kind;
-        s.camera = job.camera;
-        s.light = job.light;
-        s.order = job.order;
-        s.path = job.path;
+        Identify(job, &s);
         auto probe = io::ProbeImage(job.path);
         s.error = probe.ok() ? "unreadable" : probe.status().message();
       } else {
@@ -750,13 +747,6 @@ io::Status ScanFinish(ScanState* state) {
     }
   });
   return io::Status::Ok();
-}
-
-io::Status ScanSession(const io::Session& session, const CheckOptions& options, CheckResult* result,
-                       CheckLine* integrity, int threads) {
-  std::unique_ptr<ScanState, ScanStateDeleter> state;
-  LUMENRIG_RETURN_IF_ERROR(ScanBegin(session, options, result, integrity, threads, &state));
-  return ScanFinish(state.get());
 }
 
 void ScanStateDeleter::operator()(ScanState* state) const { delete state; }

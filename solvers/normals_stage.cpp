@@ -3,7 +3,6 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
-#include <climits>
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
@@ -36,8 +35,8 @@ constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror 
 // (measured: about 0.65 GB for the 1.05M-pixel mask of a 2048x2048 bust view),
 // and conjugate gradients (matrix, incomplete factor, vectors; estimated).
 constexpr int64_t kLdltBytesPerUnknown = 650;
-constexpr int64_t kMaxBandBytes = int64_t{512} << 20;  // band stack cap (see the plan)
 constexpr int64_t kCgBytesPerUnknown = 250;
+constexpr int64_t kMaxBandBytes = int64_t{512} << 20;  // band stack cap (see the plan)
 
 /// The band stack: 2 MiB aligned, advised for transparent huge pages (Linux).
 float* AllocateBand(size_t floats) {
@@ -386,7 +385,6 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     IntegrationOptions io_opts;
     io_opts.intrinsics = cam.intrinsics;
     io_opts.reference_depth_m = reference_depth_m;
-    io_opts.direct_solver_max_pixels = static_cast<int>(std::min<int64_t>(direct_max_px, INT32_MAX));
     DepthMap depth;
     LUMENRIG_RETURN_IF_ERROR(IntegrateNormals(out->normals, mask, io_opts, &depth, nthreads));
     PointsFromDepth(depth.depth, cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
@@ -407,7 +405,6 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       io_opts.intrinsics = cam.intrinsics;
       io_opts.reference_depth_m = reference_depth_m;
     }
-    io_opts.direct_solver_max_pixels = static_cast<int>(std::min<int64_t>(direct_max_px, INT32_MAX));
     out->depth_options = io_opts;
     out->depth_bytes = integrate_bytes;
     out->depth_pending = true;

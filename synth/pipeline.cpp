@@ -385,8 +385,7 @@ struct Executor {
         const UnitPlan& nu = plan->units[static_cast<size_t>(k)];
         internal::FusedNormalsUnit f;
         f.camera = session.FindCamera(nu.camera_id);
-        for (size_t c = 0; c < session.cameras.size(); ++c)
-          if (session.cameras[c].id == nu.camera_id) f.camera_index = static_cast<int>(c);
+        if (f.camera != nullptr) f.camera_index = static_cast<int>(f.camera - session.cameras.data());
         f.unit_dir = (fs::path(ctx.session_out_dir) / nu.camera_id).string();
         if (f.camera != nullptr) {
           fuse.push_back(std::move(f));

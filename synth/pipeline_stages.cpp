@@ -179,13 +179,14 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
       pending = -1;
       pending_bytes = 0;
     };
+    solvers::NormalsOptions base;
+    LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &base));
+    base.defer_depth = true;
     const auto t0 = std::chrono::steady_clock::now();
     const double c0 = io::ProcessCpuSeconds();
     for (FusedNormalsUnit& unit : units) {
-      solvers::NormalsOptions nopt;
-      LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &nopt));
+      solvers::NormalsOptions nopt = base;
       nopt.observer_bytes = (*check)->StreamBytes(unit.camera_index);
-      nopt.defer_depth = true;
       solvers::StreamedCheck* sink = check->get();
       const int ci = unit.camera_index;
       nopt.on_decoded_rows = [sink, ci](int frame, const io::ImageInfo& info, int y0, int y1, const cv::Mat& rows) {

@@ -63,20 +63,35 @@ TEST(IntegrationTest, ParaboloidFromExactNormalsBothMethods) {
   }
 }
 
-TEST(IntegrationTest, MaskedSphereCapPoisson) {
-  const int size = 96;
-  const double radius = 44, c = size / 2.0;
-  cv::Mat normals = cv::Mat::zeros(size, size, CV_32FC3), truth = cv::Mat::zeros(size, size, CV_32F);
-  cv::Mat mask = cv::Mat::zeros(size, size, CV_8U);
+// Orthographic sphere cap of `radius` px centred in a size x size view, up to
+// ~63 deg from the view axis (x^2 + y^2 <= 0.8); with `notch`, a slot is cut
+// out of one side so the domain is not convex. Depth grows away from the
+// camera (nearer at the centre).
+struct SphereCap {
+  cv::Mat normals, truth, mask;
+};
+SphereCap MakeSphereCap(int size, double radius, bool notch) {
+  SphereCap cap;
+  const double c = size / 2.0;
+  cap.normals = cv::Mat::zeros(size, size, CV_32FC3);
+  cap.truth = cv::Mat::zeros(size, size, CV_32F);
+  cap.mask = cv::Mat::zeros(size, size, CV_8U);
   for (int v = 0; v < size; ++v)
     for (int u = 0; u < size; ++u) {
       const double x = (u + 0.5 - c) / radius, y = -(v + 0.5 - c) / radius;
-      if (x * x + y * y > 0.8) continue;  // cap up to ~63 deg from the view axis
+      if (x * x + y * y > 0.8 || (notch && x > 0.2 && std::abs(y) < 0.08)) continue;
       const double z = std::sqrt(1 - x * x - y * y);
-      normals.at<cv::Vec3f>(v, u) = cv::Vec3f(float(x), float(y), float(z));
-      truth.at<float>(v, u) = float(-radius * z);  // nearer at the centre
-      mask.at<uint8_t>(v, u) = 255;
+      cap.normals.at<cv::Vec3f>(v, u) = cv::Vec3f(float(x), float(y), float(z));
+      cap.truth.at<float>(v, u) = float(-radius * z);
+      cap.mask.at<uint8_t>(v, u) = 255;
     }
+  return cap;
+}
+
+TEST(IntegrationTest, MaskedSphereCapPoisson) {
+  const double radius = 44;
+  const SphereCap cap = MakeSphereCap(96, radius, /*notch=*/false);
+  const cv::Mat &normals = cap.normals, &truth = cap.truth, &mask = cap.mask;
   DepthMap d;
   ASSERT_TRUE(IntegrateNormals(normals, mask, IntegrationOptions{}, &d).ok());
   EXPECT_EQ(d.method, "poisson-ldlt");
@@ -92,19 +107,9 @@ TEST(IntegrationTest, MaskedSphereCapPoisson) {
 // Cholesky solve of the same system and with the closed form.
 TEST(IntegrationTest, CascadicSolveAgreesWithTheDirectSolve) {
   const int size = 256;
-  const double radius = 120, c = size / 2.0;
-  cv::Mat normals = cv::Mat::zeros(size, size, CV_32FC3), truth = cv::Mat::zeros(size, size, CV_32F);
-  cv::Mat mask = cv::Mat::zeros(size, size, CV_8U);
-  for (int v = 0; v < size; ++v)
-    for (int u = 0; u < size; ++u) {
-      const double x = (u + 0.5 - c) / radius, y = -(v + 0.5 - c) / radius;
-      // A cap with a notch cut out of it, so the domain is not convex.
-      if (x * x + y * y > 0.8 || (x > 0.2 && std::abs(y) < 0.08)) continue;
-      const double z = std::sqrt(1 - x * x - y * y);
-      normals.at<cv::Vec3f>(v, u) = cv::Vec3f(float(x), float(y), float(z));
-      truth.at<float>(v, u) = float(-radius * z);
-      mask.at<uint8_t>(v, u) = 255;
-    }
+  const double radius = 120;
+  const SphereCap cap = MakeSphereCap(size, radius, /*notch=*/true);
+  const cv::Mat &normals = cap.normals, &truth = cap.truth, &mask = cap.mask;
   IntegrationOptions direct;
   direct.direct_solver_max_pixels = size * size;
   DepthMap exact;
