@@ -67,7 +67,10 @@ int RunNormals(const NormalsArgs& a) {
       "write {:.2f} s\n",
       result.camera_id, result.lights, solvers::PsMethodName(result.method), result.bands, result.band_rows,
       result.read_seconds, result.solve_seconds, result.integrate_seconds,
-      result.depth.depth.empty() ? "off" : result.depth.unit,
+      result.depth.depth.empty() ? "off"
+                                 : result.depth.unit + (result.depth.iterations > 0
+                                                            ? fmt::format(", {} CG iterations", result.depth.iterations)
+                                                            : std::string()),
       result.near_field ? fmt::format(", near-field {} iteration(s), last change {:.3f} deg",
                                       result.near_field_iterations, result.near_field_change_deg)
                         : "",

@@ -4,11 +4,11 @@
 #include <vector>
 
 #include <fmt/format.h>
-#include <Eigen/IterativeLinearSolvers>
 #include <Eigen/SparseCholesky>
 #include <opencv2/core.hpp>
 
 #include "lumenrig/capture_io/parallel.h"
+#include "poisson_multigrid.h"
 
 namespace lumenrig::solvers {
 namespace {
@@ -128,131 +128,92 @@ PoissonSystem BuildPoisson(const Field& f) {
   const int h = f.p.rows, w = f.p.cols;
   sys.index = cv::Mat(h, w, CV_32S, cv::Scalar(-1));
   int count = 0;
-  for (int v = 0; v < h; ++v)
+  for (int v = 0; v < h; ++v) {
+    const uint8_t* ok = f.valid.ptr<uint8_t>(v);
+    int* id = sys.index.ptr<int>(v);
     for (int u = 0; u < w; ++u)
-      if (f.valid.at<uint8_t>(v, u)) sys.index.at<int>(v, u) = count++;
+      if (ok[u]) id[u] = count++;
+  }
   sys.count = count;
   if (count == 0) return sys;
+  // Column a of the (symmetric) matrix holds, in increasing row order, the
+  // unknowns above, left, a itself, right and below: written straight into
+  // Eigen's compressed storage.
   const cv::Mat& index = sys.index;
-  std::vector<Eigen::Triplet<double>> triplets;
-  triplets.reserve(static_cast<size_t>(count) * 5);
-  Eigen::VectorXd& rhs = sys.rhs;
-  rhs = Eigen::VectorXd::Zero(count);
-  std::vector<double> diag(static_cast<size_t>(count), 1e-9);
-  auto edge = [&](int a, int b, double g) {  // f[b] - f[a] = g
-    diag[static_cast<size_t>(a)] += 1;
-    diag[static_cast<size_t>(b)] += 1;
-    triplets.emplace_back(a, b, -1.0);
-    triplets.emplace_back(b, a, -1.0);
-    rhs[a] -= g;
-    rhs[b] += g;
-  };
+  int64_t nnz = count;
   for (int v = 0; v < h; ++v) {
+    const int* id = index.ptr<int>(v);
+    const int* below = v + 1 < h ? index.ptr<int>(v + 1) : nullptr;
     for (int u = 0; u < w; ++u) {
-      const int a = index.at<int>(v, u);
-      if (a < 0) continue;
-      if (u + 1 < w && index.at<int>(v, u + 1) >= 0)
-        edge(a, index.at<int>(v, u + 1), 0.5 * (f.p.at<float>(v, u) + f.p.at<float>(v, u + 1)));
-      if (v + 1 < h && index.at<int>(v + 1, u) >= 0)
-        edge(a, index.at<int>(v + 1, u), 0.5 * (f.q.at<float>(v, u) + f.q.at<float>(v + 1, u)));
+      if (id[u] < 0) continue;
+      nnz += 2 * ((u + 1 < w && id[u + 1] >= 0) + (below && below[u] >= 0));
     }
   }
-  for (int i = 0; i < count; ++i) triplets.emplace_back(i, i, diag[static_cast<size_t>(i)]);
-  sys.a.resize(count, count);
-  sys.a.setFromTriplets(triplets.begin(), triplets.end());
-  return sys;
-}
-
-/// The field on a grid twice as coarse: a coarse pixel is valid when any of
-/// its four fine pixels is, with their mean gradient scaled to the coarse
-/// spacing (x2), so depth keeps its unit.
-Field Coarsen(const Field& f) {
-  Field c;
-  const int h = f.p.rows, w = f.p.cols, ch = (h + 1) / 2, cw = (w + 1) / 2;
-  c.p = cv::Mat::zeros(ch, cw, CV_32F);
-  c.q = cv::Mat::zeros(ch, cw, CV_32F);
-  c.valid = cv::Mat::zeros(ch, cw, CV_8U);
-  c.metric = f.metric;
-  for (int v = 0; v < ch; ++v)
-    for (int u = 0; u < cw; ++u) {
-      double sp = 0, sq = 0;
-      int n = 0;
-      for (int dv = 0; dv < 2; ++dv)
-        for (int du = 0; du < 2; ++du) {
-          const int fv = 2 * v + dv, fu = 2 * u + du;
-          if (fv >= h || fu >= w || !f.valid.at<uint8_t>(fv, fu)) continue;
-          sp += f.p.at<float>(fv, fu);
-          sq += f.q.at<float>(fv, fu);
-          ++n;
-        }
-      if (n < 4) continue;
-      c.valid.at<uint8_t>(v, u) = 1;
-      c.p.at<float>(v, u) = static_cast<float>(2.0 * sp / n);
-      c.q.at<float>(v, u) = static_cast<float>(2.0 * sq / n);
+  Eigen::SparseMatrix<double>& a = sys.a;
+  a.resize(count, count);
+  a.resizeNonZeros(nnz);
+  int* outer = a.outerIndexPtr();
+  int* inner = a.innerIndexPtr();
+  double* value = a.valuePtr();
+  sys.rhs = Eigen::VectorXd::Zero(count);
+  Eigen::VectorXd& rhs = sys.rhs;
+  int64_t k = 0;
+  for (int v = 0; v < h; ++v) {
+    const int* id = index.ptr<int>(v);
+    const int* above = v > 0 ? index.ptr<int>(v - 1) : nullptr;
+    const int* below = v + 1 < h ? index.ptr<int>(v + 1) : nullptr;
+    const float* p = f.p.ptr<float>(v);
+    const float* q = f.q.ptr<float>(v);
+    const float* q_above = v > 0 ? f.q.ptr<float>(v - 1) : nullptr;
+    const float* q_below = v + 1 < h ? f.q.ptr<float>(v + 1) : nullptr;
+    for (int u = 0; u < w; ++u) {
+      const int i = id[u];
+      if (i < 0) continue;
+      outer[i] = static_cast<int>(k);
+      // Each edge: f[b] - f[a] = g (forward difference, mean gradient).
+      double diag = 1e-9, r = 0;
+      auto edge = [&](int j) {
+        inner[k] = j;
+        value[k++] = -1.0;
+        diag += 1;
+      };
+      if (above && above[u] >= 0) edge(above[u]), r += 0.5 * (q_above[u] + q[u]);
+      if (u > 0 && id[u - 1] >= 0) edge(id[u - 1]), r += 0.5 * (p[u - 1] + p[u]);
+      const int64_t self = k++;
+      if (u + 1 < w && id[u + 1] >= 0) edge(id[u + 1]), r -= 0.5 * (p[u] + p[u + 1]);
+      if (below && below[u] >= 0) edge(below[u]), r -= 0.5 * (q[u] + q_below[u]);
+      inner[self] = i;
+      value[self] = diag;
+      rhs[i] = r;
     }
-  return c;
+  }
+  outer[count] = static_cast<int>(k);
+  return sys;
 }
 
 /// Integrates the field over its valid pixels. Up to
 /// direct_solver_max_pixels unknowns: sparse Cholesky (exact). Larger masks:
-/// cascadic conjugate gradients (Deuflhard, "Cascadic conjugate gradient
-/// methods for elliptic partial differential equations", 1994): the problem
-/// is solved on a grid twice as coarse (recursively, down to the direct
-/// solver), the coarse depth is carried to this grid to first order (coarse
-/// value plus this grid's gradients times the offset from the coarse pixel's
-/// centre), and conjugate gradients start from there, so the few iterations
-/// left only remove fine-scale error.
-cv::Mat Poisson(const Field& f, const IntegrationOptions& o, std::string* method) {
+/// conjugate gradients preconditioned by a multigrid V-cycle
+/// (poisson_multigrid.h), whose cost grows linearly with the mask.
+cv::Mat Poisson(const Field& f, const IntegrationOptions& o, int threads, DepthMap* out) {
   const int h = f.p.rows, w = f.p.cols;
   cv::Mat z = cv::Mat::zeros(h, w, CV_32F);
   const PoissonSystem sys = BuildPoisson(f);
+  out->iterations = 0;
+  out->residual = 0.0;
   if (sys.count == 0) return z;
   Eigen::VectorXd x;
-  if (sys.count <= o.direct_solver_max_pixels || std::min(h, w) < 16) {
+  if (sys.count <= o.direct_solver_max_pixels) {
     Eigen::SimplicialLDLT<Eigen::SparseMatrix<double>> ldlt(sys.a);
     x = ldlt.solve(sys.rhs);
-    *method = "poisson-ldlt";
+    out->method = "poisson-ldlt";
   } else {
-    const Field coarse = Coarsen(f);
-    std::string coarse_method;
-    const cv::Mat zc = Poisson(coarse, o, &coarse_method);
-    Eigen::VectorXd guess(sys.count);
-    for (int v = 0; v < h; ++v)
-      for (int u = 0; u < w; ++u) {
-        const int i = sys.index.at<int>(v, u);
-        if (i < 0) continue;
-        // The nearest valid coarse pixel (its own, else a neighbour's).
-        int cv_ = v / 2, cu = u / 2;
-        if (!coarse.valid.at<uint8_t>(cv_, cu)) {
-          int best = -1;
-          double best_d = 1e30;
-          for (int dv = -2; dv <= 2; ++dv)
-            for (int du = -2; du <= 2; ++du) {
-              const int nv = v / 2 + dv, nu = u / 2 + du;
-              if (nv < 0 || nu < 0 || nv >= coarse.valid.rows || nu >= coarse.valid.cols ||
-                  !coarse.valid.at<uint8_t>(nv, nu))
-                continue;
-              const double d = (2 * nv + 0.5 - v) * (2 * nv + 0.5 - v) + (2 * nu + 0.5 - u) * (2 * nu + 0.5 - u);
-              if (d < best_d) best_d = d, best = nv * coarse.valid.cols + nu;
-            }
-          if (best < 0) {
-            guess[i] = 0.0;
-            continue;
-          }
-          cv_ = best / coarse.valid.cols;
-          cu = best % coarse.valid.cols;
-        }
-        guess[i] = zc.at<float>(cv_, cu) + f.p.at<float>(v, u) * (u - (2 * cu + 0.5)) +
-                   f.q.at<float>(v, u) * (v - (2 * cv_ + 0.5));
-      }
-    Eigen::ConjugateGradient<Eigen::SparseMatrix<double>, Eigen::Lower | Eigen::Upper,
-                             Eigen::IncompleteCholesky<double>>
-        cg;
-    cg.setTolerance(o.cg_tolerance);
-    cg.setMaxIterations(o.cg_max_iterations);
-    cg.compute(sys.a);
-    x = cg.solveWithGuess(sys.rhs, guess);
-    *method = "poisson-cascadic-cg";
+    internal::MultigridReport report;
+    x = internal::SolvePoissonMultigrid(sys.index, sys.a, sys.rhs, o.cg_tolerance, o.cg_max_iterations, threads,
+                                        &report);
+    out->method = "poisson-multigrid-cg";
+    out->iterations = report.iterations;
+    out->residual = report.residual;
   }
   for (int v = 0; v < h; ++v)
     for (int u = 0; u < w; ++u) {
@@ -281,10 +242,12 @@ io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const I
   }
   cv::Mat z;
   if (method == IntegrationMethod::kPoisson) {
-    z = Poisson(field, options, &out->method);
+    z = Poisson(field, options, threads, out);
   } else {
     z = FrankotChellappa(field, threads);
     out->method = "frankot-chellappa";
+    out->iterations = 0;
+    out->residual = 0.0;
   }
   // Fix the free constant: zero mean (pixels) / geometric mean = reference (metres).
   const double mean = cv::mean(z, field.valid)[0];

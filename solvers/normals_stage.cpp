@@ -21,6 +21,7 @@
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/parallel.h"
 #include "lumenrig/capture_io/process_stats.h"
+#include "poisson_multigrid.h"
 
 namespace lumenrig::solvers {
 namespace {
@@ -31,11 +32,10 @@ using Clock = std::chrono::steady_clock;
 constexpr int64_t kTilePixels = 2048;               // pixels per solve task (fixed: output independent of threads)
 constexpr int64_t kBaselineBytes = 64ll << 20;      // libraries, code, allocator slack
 constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex)
-// Masked Poisson, per unknown (mask pixel): sparse Cholesky with its fill-in
-// (measured: about 0.65 GB for the 1.05M-pixel mask of a 2048x2048 bust view),
-// and conjugate gradients (matrix, incomplete factor, vectors; estimated).
+// Masked Poisson by sparse Cholesky, per unknown (mask pixel), with its
+// fill-in (measured: about 0.65 GB for a 1.05M-pixel mask; the direct solve
+// now runs only up to IntegrationOptions::direct_solver_max_pixels).
 constexpr int64_t kLdltBytesPerUnknown = 650;
-constexpr int64_t kCgBytesPerUnknown = 250;
 constexpr int64_t kMaxBandBytes = int64_t{512} << 20;  // band stack cap (see the plan)
 
 /// The band stack: 2 MiB aligned, advised for transparent huge pages (Linux).
@@ -227,7 +227,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
   // Depth: Frankot-Chellappa over the frame without a mask; with one, masked
   // Poisson, by sparse Cholesky up to IntegrationOptions'
-  // direct_solver_max_pixels mask pixels, cascadic conjugate gradients above.
+  // direct_solver_max_pixels mask pixels, multigrid-preconditioned conjugate
+  // gradients above.
   // The choice depends on the mask only (never on the budget, which must not
   // change outputs); a budget too small for it is refused below.
   const int64_t mask_px = mask.empty() ? px : cv::countNonZero(mask);
@@ -238,7 +239,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
     if (!poisson) {
       integrate_bytes = fixed + px * kIntegrationBytesPerPixel;
     } else {
-      integrate_bytes = fixed + mask_px * (mask_px <= direct_max_px ? kLdltBytesPerUnknown : kCgBytesPerUnknown);
+      integrate_bytes = fixed + (mask_px <= direct_max_px ? mask_px * kLdltBytesPerUnknown
+                                                          : internal::MultigridPlanBytes(mask_px, px));
     }
   }
   // 10% of what is left is kept as slack for allocator and library overheads.
@@ -504,6 +506,10 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
       io::ExrWriteOptions od = o;
       od.attributes["lumenrig.depth_unit"] = result.depth.unit;
       od.attributes["lumenrig.depth_method"] = result.depth.method;
+      if (result.depth.iterations > 0)
+        od.attributes["lumenrig.depth_solver"] =
+            fmt::format("conjugate gradients: {} iterations, relative residual {:.3g}", result.depth.iterations,
+                        result.depth.residual);
       od.attributes["lumenrig.content"] =
           result.depth.unit == "metres"
               ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
