@@ -199,8 +199,6 @@ cv::Mat Poisson(const Field& f, const IntegrationOptions& o, int threads, DepthM
   const int h = f.p.rows, w = f.p.cols;
   cv::Mat z = cv::Mat::zeros(h, w, CV_32F);
   const PoissonSystem sys = BuildPoisson(f);
-  out->iterations = 0;
-  out->residual = 0.0;
   if (sys.count == 0) return z;
   Eigen::VectorXd x;
   if (sys.count <= o.direct_solver_max_pixels) {
@@ -241,13 +239,13 @@ io::Status IntegrateNormals(const cv::Mat& normals, const cv::Mat& mask, const I
                                                                                : IntegrationMethod::kFrankotChellappa;
   }
   cv::Mat z;
+  out->iterations = 0;  // set by the iterative solver only
+  out->residual = 0.0;
   if (method == IntegrationMethod::kPoisson) {
     z = Poisson(field, options, threads, out);
   } else {
     z = FrankotChellappa(field, threads);
     out->method = "frankot-chellappa";
-    out->iterations = 0;
-    out->residual = 0.0;
   }
   // Fix the free constant: zero mean (pixels) / geometric mean = reference (metres).
   const double mean = cv::mean(z, field.valid)[0];

@@ -145,16 +145,19 @@ Level Coarsen(Level& f) {
   return c;
 }
 
+/// sum_j w_ij x_j over the edges of unknown i.
+inline double NeighbourSum(const Level& l, int64_t i) {
+  double s = 0;
+  for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k) s += l.edge_w[k] * l.x[l.edge_to[k]];
+  return s;
+}
+
 /// One red-black Gauss-Seidel half sweep over [begin, end) (one colour):
 /// each update reads only the other colour, so the chunks may run in any
 /// order and the result is the same.
 void Sweep(Level& l, int64_t begin, int64_t end, int threads) {
   ForChunks(begin, end, threads, [&](int64_t b, int64_t e) {
-    for (int64_t i = b; i < e; ++i) {
-      double s = l.b[i];
-      for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k) s += l.edge_w[k] * l.x[l.edge_to[k]];
-      l.x[i] = s / l.diag[i];
-    }
+    for (int64_t i = b; i < e; ++i) l.x[i] = (l.b[i] + NeighbourSum(l, i)) / l.diag[i];
   });
 }
 
@@ -162,11 +165,7 @@ void Sweep(Level& l, int64_t begin, int64_t end, int threads) {
 /// of r over each aggregate.
 void RestrictResidual(Level& f, Level& c, int threads) {
   ForChunks(0, f.n, threads, [&](int64_t b, int64_t e) {
-    for (int64_t i = b; i < e; ++i) {
-      double s = f.b[i] - f.diag[i] * f.x[i];
-      for (int64_t k = f.edge_begin[i]; k < f.edge_begin[i + 1]; ++k) s += f.edge_w[k] * f.x[f.edge_to[k]];
-      f.r[i] = s;
-    }
+    for (int64_t i = b; i < e; ++i) f.r[i] = f.b[i] - f.diag[i] * f.x[i] + NeighbourSum(f, i);
   });
   ForChunks(0, c.n, threads, [&](int64_t b, int64_t e) {
     for (int64_t k = b; k < e; ++k) {
@@ -188,33 +187,31 @@ void ProlongAdd(const Level& c, Level& f, int threads) {
 /// The hierarchy and its coarsest-level factorisation.
 class Hierarchy {
  public:
-  Hierarchy(const cv::Mat& index, int threads) : threads_(threads) {
+  Hierarchy(const cv::Mat& index, const Eigen::SparseMatrix<double>& a, int threads) : threads_(threads) {
     // Finest level: one unknown per pixel of `index`, red pixels first,
-    // each colour in row-major order.
+    // each colour in row-major order; its edges are the off-diagonal
+    // entries of the system matrix (symmetric, so column k = row k).
     Level fine;
-    const int h = index.rows, w = index.cols;
     for (int colour = 0; colour < 2; ++colour)
-      for (int v = 0; v < h; ++v) {
+      for (int v = 0; v < index.rows; ++v) {
         const int* id = index.ptr<int>(v);
-        for (int u = (v + colour) & 1; u < w; u += 2)
-          if (id[u] >= 0) fine.cell_v.push_back(v), fine.cell_u.push_back(u);
+        for (int u = (v + colour) & 1; u < index.cols; u += 2)
+          if (id[u] >= 0) fine.cell_v.push_back(v), fine.cell_u.push_back(u), from_level_.push_back(id[u]);
       }
-    fine.n = static_cast<int64_t>(fine.cell_v.size());
+    fine.n = static_cast<int64_t>(from_level_.size());
     to_level_.assign(fine.n, 0);
-    for (int64_t k = 0; k < fine.n; ++k) to_level_[index.at<int>(fine.cell_v[k], fine.cell_u[k])] = static_cast<int>(k);
+    for (int64_t k = 0; k < fine.n; ++k) to_level_[from_level_[k]] = static_cast<int>(k);
     fine.edge_begin.assign(fine.n + 1, 0);
-    fine.edge_to.reserve(fine.n * 4);
+    fine.edge_to.reserve(a.nonZeros());
+    fine.edge_w.reserve(a.nonZeros());
     for (int64_t k = 0; k < fine.n; ++k) {
-      const int v = fine.cell_v[k], u = fine.cell_u[k];
-      const int nv[4] = {v - 1, v, v, v + 1}, nu[4] = {u, u - 1, u + 1, u};
-      for (int d = 0; d < 4; ++d) {
-        if (nv[d] < 0 || nu[d] < 0 || nv[d] >= h || nu[d] >= w) continue;
-        const int j = index.at<int>(nv[d], nu[d]);
-        if (j >= 0) fine.edge_to.push_back(to_level_[j]);
+      for (Eigen::SparseMatrix<double>::InnerIterator it(a, from_level_[k]); it; ++it) {
+        if (it.row() == from_level_[k]) continue;
+        fine.edge_to.push_back(to_level_[it.row()]);
+        fine.edge_w.push_back(-it.value());
       }
       fine.edge_begin[k + 1] = static_cast<int64_t>(fine.edge_to.size());
     }
-    fine.edge_w.assign(fine.edge_to.size(), 1.0);
     FinishLevel(&fine);
     levels_.push_back(std::move(fine));
     // Coarser levels down to a size the sparse Cholesky solves at once, or
@@ -228,8 +225,6 @@ class Hierarchy {
     }
     FactorCoarsest();
   }
-
-  int levels() const { return static_cast<int>(levels_.size()); }
 
   /// One symmetric V-cycle applied to r (an approximate A^-1 r).
   Eigen::VectorXd Apply(const Eigen::VectorXd& r) {
@@ -280,7 +275,8 @@ class Hierarchy {
   }
 
   int threads_;
-  std::vector<int> to_level_;  // system unknown -> finest-level unknown
+  std::vector<int> to_level_;    // system unknown -> finest-level unknown
+  std::vector<int> from_level_;  // and back
   std::vector<Level> levels_;
   Eigen::SimplicialLDLT<Eigen::SparseMatrix<double>> coarse_;
 };
@@ -317,7 +313,7 @@ class VCyclePreconditioner {
 Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::SparseMatrix<double>& a,
                                       const Eigen::VectorXd& rhs, double tolerance, int max_iterations, int threads,
                                       MultigridReport* report) {
-  Hierarchy hierarchy(index, threads);
+  Hierarchy hierarchy(index, a, threads);
   Eigen::ConjugateGradient<Eigen::SparseMatrix<double>, Eigen::Lower | Eigen::Upper, VCyclePreconditioner> cg;
   cg.setTolerance(tolerance);
   cg.setMaxIterations(max_iterations);
@@ -344,7 +340,6 @@ Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::SparseM
         x[id[u]] -= sum[static_cast<size_t>(l[u])] / static_cast<double>(count[static_cast<size_t>(l[u])]);
   }
   if (report) {
-    report->levels = hierarchy.levels();
     report->iterations = static_cast<int>(cg.iterations());
     report->residual = cg.error();
   }

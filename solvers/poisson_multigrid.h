@@ -13,7 +13,6 @@
 namespace lumenrig::solvers::internal {
 
 struct MultigridReport {
-  int levels = 0;         ///< grids in the hierarchy, the finest included
   int iterations = 0;     ///< conjugate-gradient iterations
   double residual = 0.0;  ///< final |rhs - A x| / |rhs|
 };
