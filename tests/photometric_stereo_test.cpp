@@ -2,6 +2,7 @@
 // (radiance a/pi * max(0, n.l), DESIGN.md "Frames and units").
 #include <cmath>
 #include <cstring>
+#include <limits>
 #include <random>
 
 #include <gtest/gtest.h>
@@ -332,6 +333,61 @@ TEST(PhotometricStereoTest, NormalizeFrameSubtractsDarkAndDividesByIntensity) {
   EXPECT_FLOAT_EQ(p[0], 0.2f);
   EXPECT_FLOAT_EQ(p[1], 0.15f);
   EXPECT_FLOAT_EQ(p[2], 0.1f);
+}
+
+// With a black level, the one-pass result equals the steps done one at a
+// time in float (subtract black, subtract dark, times 1/intensity), which is
+// what decoding with a black level and normalising afterwards gives.
+TEST(PhotometricStereoTest, NormalizeFrameWithBlackLevelEqualsTheStepsOneAtATime) {
+  cv::RNG rng(11);
+  cv::Mat f(3, 29, CV_32FC3), dark(3, 29, CV_32FC3);
+  rng.fill(f, cv::RNG::UNIFORM, 0.0, 2.0);
+  rng.fill(dark, cv::RNG::UNIFORM, 0.0, 0.05);
+  const Eigen::Vector3d intensity(1.7, 2.3, 0.9);
+  const float black = 0.0137f;
+  cv::Mat expected = f.clone();
+  expected -= cv::Scalar::all(black);  // as io::BandReader applies the black level
+  for (int r = 0; r < f.rows; ++r)
+    for (int j = 0; j < f.cols * 3; ++j)
+      expected.ptr<float>(r)[j] =
+          (expected.ptr<float>(r)[j] - dark.ptr<float>(r)[j]) * static_cast<float>(1.0 / intensity[j % 3]);
+  NormalizeFrame(&f, dark, intensity, black);
+  EXPECT_EQ(cv::norm(f, expected, cv::NORM_INF), 0.0);
+}
+
+// The returned largest magnitude skips NaN, counts -x as x and +-Inf as Inf,
+// for RGB and gray frames with and without a dark frame. Reference: a plain
+// scalar loop over the normalised values.
+TEST(PhotometricStereoTest, NormalizeFrameReturnsTheLargestMagnitudeSkippingNaN) {
+  const float nan = std::numeric_limits<float>::quiet_NaN();
+  const float inf = std::numeric_limits<float>::infinity();
+  for (int channels : {1, 3}) {
+    for (bool with_dark : {false, true}) {
+      for (int variant = 0; variant < 3; ++variant) {
+        cv::RNG rng(7 + variant);
+        cv::Mat f(5, 37, CV_32FC(channels));
+        rng.fill(f, cv::RNG::UNIFORM, -1.0, 1.0);
+        f.at<float>(2, 5) = nan;
+        if (variant == 1) f.at<float>(3, 11) = -7.5f;  // largest is negative
+        if (variant == 2) f.at<float>(4, 2) = -inf;
+        cv::Mat dark;
+        if (with_dark) dark = cv::Mat(f.size(), f.type(), cv::Scalar::all(0.25));
+        const Eigen::Vector3d intensity(2.0, 4.0, 8.0);
+        cv::Mat expected_values = f.clone();
+        const float largest = NormalizeFrame(&f, dark, intensity);
+        float expected = 0.0f;
+        for (int r = 0; r < f.rows; ++r)
+          for (int j = 0; j < f.cols * channels; ++j) {
+            const float v = f.ptr<float>(r)[j];
+            if (!std::isnan(v)) expected = std::max(expected, std::abs(v));
+          }
+        EXPECT_EQ(largest, expected) << channels << " channel(s), dark " << with_dark << ", variant " << variant;
+        if (variant == 1) EXPECT_GT(largest, 0.9f);  // -7.75 scaled by at least 1/8
+        if (variant == 2) EXPECT_EQ(largest, inf);
+        EXPECT_TRUE(std::isnan(f.at<float>(2, 5)));
+      }
+    }
+  }
 }
 
 }  // namespace

@@ -143,11 +143,13 @@ class PsSolver {
 /// 0 when n < 3. The constants are common practice, not from a source.
 float PsConfidence(int inliers, double condition, double relative_residual);
 
-/// Subtracts `dark` (same size and channels, may be empty) and divides each
-/// channel by `intensity` (RGB; a 1-channel frame is divided by the BT.709
-/// luminance of the intensity), in place, in one pass. CV_32F only. Returns
-/// the largest magnitude of the result (NaN ignored), for all-zero checks.
-float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity);
+/// Subtracts `black_level`, then `dark` (same size and channels, may be
+/// empty), and divides each channel by `intensity` (RGB; a 1-channel frame is
+/// divided by the BT.709 luminance of the intensity), in place, in one pass:
+/// ((x - black_level) - dark) / intensity, rounded after each step as when
+/// done one step at a time. CV_32F only. Returns the largest magnitude of
+/// the result (NaN ignored), for all-zero checks.
+float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity, float black_level = 0.0f);
 
 /// Whole images in memory (tests, small views): frames CV_32FC3/C1, already
 /// normalised (NormalizeFrame). mask: CV_8U or empty. Outputs CV_32FC3
