@@ -82,6 +82,7 @@ struct ExrChannelMap {
   std::vector<std::string> sources;  // 1 or 3 names
   std::vector<std::string> all;
   std::string pixel_type;
+  bool all_half = false;  // every source channel is HALF
 };
 
 Expected<ExrChannelMap> MapExrChannels(const Imf::Header& header, const std::string& path) {
@@ -122,6 +123,8 @@ Expected<ExrChannelMap> MapExrChannels(const Imf::Header& header, const std::str
     for (const auto& n : map.all) list += (list.empty() ? "" : ",") + n;
     return Status::BadInput(fmt::format("{}: no R,G,B or Y channels (found: {})", path, list.empty() ? "none" : list));
   }
+  map.all_half =
+      std::all_of(map.sources.begin(), map.sources.end(), [&](const std::string& n) { return types[n] == Imf::HALF; });
   switch (types[map.sources[0]]) {
     case Imf::HALF: map.pixel_type = "half"; break;
     case Imf::FLOAT: map.pixel_type = "float"; break;
@@ -167,19 +170,35 @@ class ExrBandReader : public BandReader {
   const ImageInfo& info() const override { return info_; }
 
   Status ReadRows(int y0, int y1, cv::Mat* out) override {
+    LUMENRIG_RETURN_IF_ERROR(Read(y0, y1, Imf::FLOAT, out));
+    ApplyDecodeOptions(options_, out);
+    return Status::Ok();
+  }
+
+  bool StoresHalf() const override { return map_.all_half; }
+
+  Status ReadRowsHalf(int y0, int y1, cv::Mat* out) override {
+    if (!map_.all_half) return Status::Internal(fmt::format("{}: channels are not all stored as half floats", path_));
+    return Read(y0, y1, Imf::HALF, out);
+  }
+
+ private:
+  // Rows [y0, y1) of the mapped channels as `type` (FLOAT or HALF).
+  Status Read(int y0, int y1, Imf::PixelType type, cv::Mat* out) {
     if (y0 < 0 || y1 > info_.height || y0 >= y1)
       return Status::Internal(fmt::format("{}: invalid band [{}, {}) for height {}", path_, y0, y1, info_.height));
     const int c = info_.channels;
-    out->create(y1 - y0, info_.width, CV_MAKETYPE(CV_32F, c));
-    const size_t x_stride = sizeof(float) * static_cast<size_t>(c);
+    const size_t elem = type == Imf::HALF ? 2 : 4;
+    out->create(y1 - y0, info_.width, CV_MAKETYPE(type == Imf::HALF ? CV_16F : CV_32F, c));
+    const size_t x_stride = elem * static_cast<size_t>(c);
     const size_t y_stride = x_stride * static_cast<size_t>(info_.width);
-    char* base = reinterpret_cast<char*>(out->ptr<float>(0)) -
+    char* base = reinterpret_cast<char*>(out->data) -
                  static_cast<ptrdiff_t>(min_x_) * static_cast<ptrdiff_t>(x_stride) -
                  static_cast<ptrdiff_t>(min_y_ + y0) * static_cast<ptrdiff_t>(y_stride);
     Imf::FrameBuffer fb;
     for (int k = 0; k < c; ++k) {
       fb.insert(map_.sources[static_cast<size_t>(k)],
-                Imf::Slice(Imf::FLOAT, base + sizeof(float) * static_cast<size_t>(k), x_stride, y_stride, 1, 1, 0.0));
+                Imf::Slice(type, base + elem * static_cast<size_t>(k), x_stride, y_stride, 1, 1, 0.0));
     }
     try {
       file_->setFrameBuffer(fb);
@@ -188,11 +207,9 @@ class ExrBandReader : public BandReader {
       return Status::BadInput(fmt::format("{}: corrupt or truncated OpenEXR data in rows {}..{} ({})", path_, y0,
                                           y1 - 1, FirstLine(e.what())));
     }
-    ApplyDecodeOptions(options_, out);
     return Status::Ok();
   }
 
- private:
   static std::string FirstLine(const std::string& s) { return s.substr(0, s.find('\n')); }
   std::string path_;
   DecodeOptions options_;
@@ -279,6 +296,10 @@ class WholeImageBandReader : public BandReader {
 Expected<std::unique_ptr<BandReader>> OpenWholeImageBandReader(const std::string& path, FileFormat format,
                                                                const DecodeOptions& options) {
   return WholeImageBandReader::Open(path, format, options);
+}
+
+Status BandReader::ReadRowsHalf(int, int, cv::Mat*) {
+  return Status::Internal("this reader's format does not store half floats");
 }
 
 Expected<std::unique_ptr<BandReader>> BandReader::Open(const std::string& path, const DecodeOptions& options) {

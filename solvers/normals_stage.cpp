@@ -36,7 +36,7 @@ constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror 
 // fill-in (measured: about 0.65 GB for a 1.05M-pixel mask; the direct solve
 // now runs only up to IntegrationOptions::direct_solver_max_pixels).
 constexpr int64_t kLdltBytesPerUnknown = 650;
-constexpr int64_t kMaxBandBytes = int64_t{512} << 20;  // band stack cap (see the plan)
+constexpr int64_t kMaxBandBytes = int64_t{128} << 20;  // band stack cap (see the plan)
 
 /// The band stack: 2 MiB aligned, advised for transparent huge pages (Linux).
 float* AllocateBand(size_t floats) {
@@ -219,12 +219,24 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   // Memory plan (bytes). Band height depends on the budget and the view only,
   // never on the thread count.
   const int64_t px = static_cast<int64_t>(width) * height;
-  const int64_t fixed =
-      kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0)) + std::max<int64_t>(0, options.observer_bytes);
+  // The band stack keeps the stored half floats when every frame stores half
+  // (OpenEXR) and decoding is linear: half the bytes to write while decoding
+  // and to read while solving. Each solve tile then widens its rows to float,
+  // subtracts the black level and normalises them in a per-thread scratch;
+  // that gives the very floats of decoding to float first (half to float is
+  // exact, and the arithmetic is the same), so the outputs do not change.
+  bool half_stack = keep_open && decode.encoding == io::Encoding::kLinear;
+  for (const auto& r : readers) half_stack = half_stack && r != nullptr && r->StoresHalf();
+  const int64_t elem_bytes = half_stack ? 2 : 4;
+  const int64_t tile_bytes = kTilePixels * channels * 4 * static_cast<int64_t>(n);
+  const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0)) +
+                        std::max<int64_t>(0, options.observer_bytes) +
+                        (half_stack ? static_cast<int64_t>(io::ResolveThreads(0)) * tile_bytes : 0);
   const int64_t lpb = std::max(1, std::min(info.lines_per_block, height));
   const int64_t reader_bytes = keep_open ? static_cast<int64_t>(n) * (4 * lpb * width * channels * 2 + (64 << 10))
                                          : static_cast<int64_t>(io::ResolveThreads(0)) * px * channels * 6;
-  const int64_t row_bytes = (static_cast<int64_t>(n) + (dark_reader ? 1 : 0)) * width * channels * 4;
+  const int64_t row_bytes = static_cast<int64_t>(n) * width * channels * elem_bytes +
+                            (dark_reader ? static_cast<int64_t>(width) * channels * 4 : 0);
   // Depth: Frankot-Chellappa over the frame without a mask; with one, masked
   // Poisson, by sparse Cholesky up to IntegrationOptions'
   // direct_solver_max_pixels mask pixels, multigrid-preconditioned conjugate
@@ -246,9 +258,10 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   // 10% of what is left is kept as slack for allocator and library overheads.
   const int64_t band_budget = (options.mem_budget_bytes - fixed - reader_bytes) / 10 * 9;
   int64_t rows = band_budget > 0 ? band_budget / row_bytes : 0;
-  // Bands larger than this gain nothing (per-band costs are small) and were
-  // measured to read slower: 912-row bands of a 2048x2048 156-light view
-  // (4G budget) took 21 s of reading CPU against 15 s for 160-row bands.
+  // Bands larger than this gain nothing (per-band costs are small) and read
+  // slower: 912-row bands of a 2048x2048 156-light view (4G budget) took
+  // 21 s of reading CPU against 15 s for 160-row bands; with the half stack,
+  // 32- and 64-row bands read and solved in 17.4 s of CPU, 128-row in 18.1 s.
   rows = std::min(rows, std::max<int64_t>(lpb, kMaxBandBytes / row_bytes));
   if (keep_open) rows = rows / lpb * lpb;
   rows = std::min<int64_t>(rows, height);
@@ -273,23 +286,34 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   out->confidence.create(height, width, CV_32FC1);
   out->all_zero_lights.clear();
 
-  const int64_t slot = rows * width * channels;
+  const int64_t slot = rows * width * channels;  // elements per frame
   // Left uninitialised: every element the solve reads is written by a band
   // reader first, and zero-filling a multi-GiB stack is a pass over memory.
   // Asked for on 2 MiB transparent huge pages where the kernel offers them:
   // a GiB-sized stack on 4 KiB pages costs hundreds of thousands of page
   // faults on first touch (measured: about a tenth of the reading time).
-  std::unique_ptr<float[], BandFree> band(AllocateBand(static_cast<size_t>(slot * n)));
-  if (!band) return io::Status::Internal(fmt::format("cannot allocate the {} band buffer", Mib(slot * n * 4)));
+  std::unique_ptr<float[], BandFree> band(AllocateBand(static_cast<size_t>((slot * n * elem_bytes + 3) / 4)));
+  if (!band) return io::Status::Internal(fmt::format("cannot allocate the {} band buffer", Mib(slot * n * elem_bytes)));
+  char* const band_bytes = reinterpret_cast<char*>(band.get());
   cv::Mat dark_band;
   std::vector<float> frame_max(static_cast<size_t>(n), 0.0f);
   const int nthreads = io::ResolveThreads(threads);
   std::vector<std::vector<float>> scratch(static_cast<size_t>(nthreads));
+  // Half stack: per thread, one solve tile of every frame in float, the
+  // largest normalised magnitude per frame, and a chunk widened for the
+  // decoded-rows observer.
+  std::vector<std::vector<float>> tiles(half_stack ? static_cast<size_t>(nthreads) : 0);
+  std::vector<std::vector<float>> tile_max(half_stack ? static_cast<size_t>(nthreads) : 0,
+                                           std::vector<float>(static_cast<size_t>(n), 0.0f));
+  std::vector<cv::Mat> widened(half_stack ? static_cast<size_t>(nthreads) : 0);
   std::vector<io::Status> errors(static_cast<size_t>(n));
 
   cv::Mat points, previous_normals, previous_confidence;
   if (near) PointsFromDepth(cv::Mat(), cv::Size(width, height), *cam.intrinsics, reference_depth_m, &points);
   const bool single_band = rows >= height;
+  // Rows decoded per reader call: whole line blocks, about 16 rows (a
+  // 2048-pixel RGB float chunk of 16 rows is 384 KiB, within a core's L2).
+  const int chunk_rows = static_cast<int>(lpb * std::max<int64_t>(1, 16 / lpb));
   const int iterations = near ? options.near_field_max_iterations : 1;
   out->read_seconds = out->solve_seconds = out->integrate_seconds = 0;
   out->read_cpu_seconds = out->solve_cpu_seconds = 0;
@@ -306,12 +330,11 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         io::ParallelFor(0, n, 1, nthreads, [&](int64_t b, int64_t e) {
           for (int64_t i = b; i < e; ++i) {
             const auto& frame = cam.olat[static_cast<size_t>(i)];
-            float* dst = band.get() + i * slot;
-            cv::Mat view(band_rows, width, CV_MAKETYPE(CV_32F, channels), dst);
+            char* dst = band_bytes + i * slot * elem_bytes;
+            io::BandReader* reader = keep_open ? readers[static_cast<size_t>(i)].get() : nullptr;
+            std::unique_ptr<io::BandReader> reopened;
             io::Status s;
-            if (keep_open) {
-              s = readers[static_cast<size_t>(i)]->ReadRows(y0, y1, &view);
-            } else {
+            if (!keep_open) {
               auto r = io::BandReader::Open(frame.path, decode);
               if (!r.ok()) {
                 s = r.status();
@@ -321,19 +344,41 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
                                                      frame.path, (*r)->info().width, (*r)->info().height,
                                                      (*r)->info().channels, cam.olat[0].path, width, height, channels));
               } else {
-                s = (*r)->ReadRows(y0, y1, &view);
+                reopened = std::move(r).value();
+                reader = reopened.get();
               }
             }
-            if (s.ok() && view.data != reinterpret_cast<uchar*>(dst))
-              s = io::Status::Internal(fmt::format("{}: band reader reallocated the band buffer", frame.path));
+            // Decoded (and, for a float stack, normalised) a few line blocks
+            // at a time, so the normalisation finds the rows still in cache
+            // instead of making a second pass over the band in memory.
+            float largest = 0.0f;
+            for (int ys = y0; s.ok() && ys < y1; ys += chunk_rows) {
+              const int ye = std::min(y1, ys + chunk_rows);
+              char* chunk_dst = dst + static_cast<int64_t>(ys - y0) * width * channels * elem_bytes;
+              cv::Mat view(ye - ys, width, CV_MAKETYPE(half_stack ? CV_16F : CV_32F, channels), chunk_dst);
+              s = half_stack ? reader->ReadRowsHalf(ys, ye, &view) : reader->ReadRows(ys, ye, &view);
+              if (s.ok() && view.data != reinterpret_cast<uchar*>(chunk_dst))
+                s = io::Status::Internal(fmt::format("{}: band reader reallocated the band buffer", frame.path));
+              if (!s.ok()) break;
+              if (half_stack) {
+                // The observer sees what ReadRows gives: floats, black level off.
+                if (iter == 0 && options.on_decoded_rows) {
+                  cv::Mat& wide = widened[static_cast<size_t>(io::CurrentThreadIndex())];
+                  view.convertTo(wide, CV_32F);
+                  if (decode.black_level != 0.0f) wide -= cv::Scalar::all(decode.black_level);
+                  options.on_decoded_rows(static_cast<int>(i), reader->info(), ys, ye, wide);
+                }
+                continue;  // normalised tile by tile in the solve
+              }
+              if (iter == 0 && options.on_decoded_rows)
+                options.on_decoded_rows(static_cast<int>(i), keep_open ? reader->info() : info, ys, ye, view);
+              const cv::Mat dark_rows = dark_band.empty() ? cv::Mat() : dark_band.rowRange(ys - y0, ye - y0);
+              largest = std::max(largest, NormalizeFrame(&view, dark_rows, lights[static_cast<size_t>(i)]->intensity));
+            }
             if (!s.ok()) {
               errors[static_cast<size_t>(i)] = s;
               continue;
             }
-            if (iter == 0 && options.on_decoded_rows)
-              options.on_decoded_rows(static_cast<int>(i), keep_open ? readers[static_cast<size_t>(i)]->info() : info,
-                                      y0, y1, view);
-            const float largest = NormalizeFrame(&view, dark_band, lights[static_cast<size_t>(i)]->intensity);
             frame_max[static_cast<size_t>(i)] = std::max(frame_max[static_cast<size_t>(i)], largest);
           }
         });
@@ -348,8 +393,31 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       const int64_t offset = static_cast<int64_t>(y0) * width;
       io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
         BlockInput in;
-        in.data = band.get() + b * channels;
-        in.light_stride = slot;
+        const size_t t = static_cast<size_t>(io::CurrentThreadIndex());
+        if (half_stack) {
+          // Widen this tile of every frame to float and normalise it.
+          std::vector<float>& tile = tiles[t];
+          tile.resize(static_cast<size_t>(n * kTilePixels * channels));
+          const int count = static_cast<int>(e - b);
+          const cv::Mat dark_tile = dark_band.empty() ? cv::Mat()
+                                                      : cv::Mat(1, count, CV_MAKETYPE(CV_32F, channels),
+                                                                dark_band.ptr<float>() + b * channels);
+          for (int i = 0; i < n; ++i) {
+            const cv::Mat stored(1, count * channels, CV_16F, band_bytes + (i * slot + b * channels) * 2);
+            float* wide = tile.data() + static_cast<int64_t>(i) * kTilePixels * channels;
+            cv::Mat flat(1, count * channels, CV_32F, wide);
+            stored.convertTo(flat, CV_32F);
+            cv::Mat rows_f(1, count, CV_MAKETYPE(CV_32F, channels), wide);
+            const float largest =
+                NormalizeFrame(&rows_f, dark_tile, lights[static_cast<size_t>(i)]->intensity, decode.black_level);
+            tile_max[t][static_cast<size_t>(i)] = std::max(tile_max[t][static_cast<size_t>(i)], largest);
+          }
+          in.data = tile.data();
+          in.light_stride = kTilePixels * channels;
+        } else {
+          in.data = band.get() + b * channels;
+          in.light_stride = slot;
+        }
         in.pixels = e - b;
         in.channels = channels;
         in.mask = mask.empty() ? nullptr : mask.ptr<uint8_t>() + offset + b;
@@ -358,12 +426,15 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
         o.normals = out->normals.ptr<float>() + 3 * (offset + b);
         o.albedo = out->albedo.ptr<float>() + 3 * (offset + b);
         o.confidence = out->confidence.ptr<float>() + offset + b;
-        solver->SolveBlock(in, o, &scratch[static_cast<size_t>(io::CurrentThreadIndex())]);
+        solver->SolveBlock(in, o, &scratch[t]);
       });
       out->solve_seconds += Seconds(t1, Clock::now());
       out->solve_cpu_seconds += io::ProcessCpuSeconds() - c1;
     }
     if (iter == 0) {
+      for (const auto& m : tile_max)
+        for (int i = 0; i < n; ++i)
+          frame_max[static_cast<size_t>(i)] = std::max(frame_max[static_cast<size_t>(i)], m[static_cast<size_t>(i)]);
       bool all_zero = true;
       for (int i = 0; i < n; ++i) {
         if (frame_max[static_cast<size_t>(i)] > 0)
@@ -428,7 +499,7 @@ io::Status IntegrateDepth(NormalsResult* result, int threads) {
 
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result) {
   std::vector<std::string> names = {"normals.exr", "albedo.exr", "confidence.exr"};
-  if (!result.depth.depth.empty()) names.push_back("depth.exr");
+  if (!result.depth.depth.empty() || result.depth_pending) names.push_back("depth.exr");
   names.push_back("normals_preview.png");
   return names;
 }
@@ -465,12 +536,13 @@ cv::Mat NormalsPreview(const NormalsResult& r) {
   return out;
 }
 
-io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
-                               const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
-  const auto names = NormalsOutputNames(result);
-  for (const auto& name : names)
-    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
-  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+namespace {
+
+// Writes the files of `names` (a subset of NormalsOutputNames) concurrently,
+// each to a temporary name renamed when complete. Statuses per name.
+std::vector<io::Status> WriteNormalsFiles(const NormalsResult& result, const std::string& out_dir,
+                                          const std::map<std::string, std::string>& provenance, bool overwrite,
+                                          int threads, const std::vector<std::string>& names) {
   io::ExrWriteOptions o;
   o.pixel_type = io::PixelType::kFloat;
   o.overwrite = overwrite;
@@ -481,64 +553,121 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
   o.attributes["lumenrig.lights"] = std::to_string(result.lights);
   o.attributes["lumenrig.frame"] = "camera: +x right, +y up, +z toward the viewer";
   auto path = [&](const std::string& name) { return (fs::path(out_dir) / name).string(); };
-  // One job per file; files are compressed concurrently (each written to a
-  // temporary name and renamed, io::WriteExr / io::WritePng).
-  std::vector<std::function<io::Status()>> jobs;
-  jobs.push_back([&] {
+  std::map<std::string, std::function<io::Status()>> writers;
+  writers["normals.exr"] = [&] {
     io::ExrWriteOptions on = o;
     on.channel_names = {"R", "G", "B"};
     on.attributes["lumenrig.content"] = "unit normal nx,ny,nz in R,G,B; 0 where unsolved or outside the mask";
     return io::WriteExr(path("normals.exr"), result.normals, on);
-  });
-  jobs.push_back([&] {
+  };
+  writers["albedo.exr"] = [&] {
     io::ExrWriteOptions oa = o;
     oa.attributes["lumenrig.content"] = "diffuse albedo, linear RGB (Lambertian reflectance 0..1)";
     return io::WriteExr(path("albedo.exr"), result.albedo, oa);
-  });
-  jobs.push_back([&] {
+  };
+  writers["confidence.exr"] = [&] {
     io::ExrWriteOptions oc = o;
     oc.attributes["lumenrig.content"] =
         "confidence 0..1 from inlier count, light-matrix conditioning and residual; 0 where the solve failed";
     return io::WriteExr(path("confidence.exr"), result.confidence, oc);
-  });
-  if (!result.depth.depth.empty()) {
-    jobs.push_back([&] {
-      io::ExrWriteOptions od = o;
-      od.attributes["lumenrig.depth_unit"] = result.depth.unit;
-      od.attributes["lumenrig.depth_method"] = result.depth.method;
-      if (result.depth.iterations > 0)
-        od.attributes["lumenrig.depth_solver"] =
-            fmt::format("conjugate gradients: {} iterations, relative residual {:.3g}", result.depth.iterations,
-                        result.depth.residual);
-      od.attributes["lumenrig.content"] =
-          result.depth.unit == "metres"
-              ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
-              : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
-      return io::WriteExr(path("depth.exr"), result.depth.depth, od);
-    });
-  }
-  jobs.push_back([&] { return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite); });
+  };
+  writers["depth.exr"] = [&] {
+    io::ExrWriteOptions od = o;
+    od.attributes["lumenrig.depth_unit"] = result.depth.unit;
+    od.attributes["lumenrig.depth_method"] = result.depth.method;
+    if (result.depth.iterations > 0)
+      od.attributes["lumenrig.depth_solver"] =
+          fmt::format("conjugate gradients: {} iterations, relative residual {:.3g}", result.depth.iterations,
+                      result.depth.residual);
+    od.attributes["lumenrig.content"] =
+        result.depth.unit == "metres"
+            ? "depth along the view axis (metres, perspective; geometric mean over the subject = reference depth)"
+            : "relative depth, pixels (orthographic; grows away from the camera; zero mean over the subject)";
+    return io::WriteExr(path("depth.exr"), result.depth.depth, od);
+  };
+  writers["normals_preview.png"] = [&] {
+    return io::WritePng(path("normals_preview.png"), NormalsPreview(result), overwrite);
+  };
   // OpenEXR compresses the line blocks of each file on its own pool too, so
   // the two large RGB files do not leave a core idle at the end; the bytes
   // written do not depend on it. Restored afterwards (process-wide setting).
   const int exr_threads_before = Imf::globalThreadCount();
   const int exr_threads = io::ResolveThreads(threads);
   if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads);
-  std::vector<io::Status> status(jobs.size());
-  io::ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
-    for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = jobs[static_cast<size_t>(j)]();
+  std::vector<io::Status> status(names.size());
+  io::ParallelFor(0, static_cast<int64_t>(names.size()), 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) status[static_cast<size_t>(j)] = writers.at(names[static_cast<size_t>(j)])();
   });
   if (exr_threads > 1) Imf::setGlobalThreadCount(exr_threads_before);
-  for (const auto& st : status) {
-    if (st.ok()) continue;
-    // No partial output: remove what this call wrote.
-    for (size_t j = 0; j < status.size(); ++j) {
-      std::error_code ec;
-      if (status[j].ok()) fs::remove(path(names[j]), ec);
-    }
-    return st;
+  return status;
+}
+
+// Removes the files of `names` whose status is ok (written by this call).
+void RemoveWritten(const std::string& out_dir, const std::vector<std::string>& names,
+                   const std::vector<io::Status>& status) {
+  for (size_t j = 0; j < names.size() && j < status.size(); ++j) {
+    std::error_code ec;
+    if (status[j].ok()) fs::remove(fs::path(out_dir) / names[j], ec);
   }
+}
+
+io::Status FirstError(const std::vector<io::Status>& status) {
+  for (const auto& st : status) LUMENRIG_RETURN_IF_ERROR(st);
   return io::Status::Ok();
+}
+
+}  // namespace
+
+io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
+                               const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
+  if (result.depth_pending)
+    return io::Status::Internal("WriteNormalsOutputs: the depth is still pending (use FinishNormalsOutputs)");
+  const auto names = NormalsOutputNames(result);
+  for (const auto& name : names)
+    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+  const auto status = WriteNormalsFiles(result, out_dir, provenance, overwrite, threads, names);
+  const io::Status first = FirstError(status);
+  if (!first.ok()) RemoveWritten(out_dir, names, status);  // no partial output
+  return first;
+}
+
+io::Status FinishNormalsOutputs(NormalsResult* result, const std::string& out_dir,
+                                const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
+  if (!result->depth_pending) return WriteNormalsOutputs(*result, out_dir, provenance, overwrite, threads);
+  const auto names = NormalsOutputNames(*result);
+  for (const auto& name : names)
+    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
+  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+  // The depth needs only the normals and mask, which are final: it is
+  // integrated while the three maps are compressed and written.
+  const std::vector<std::string> maps = {"normals.exr", "albedo.exr", "confidence.exr"};
+  std::vector<io::Status> map_status;
+  io::Status depth_status;
+  const auto t0 = Clock::now();
+  io::ParallelFor(0, 2, 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t j = b; j < e; ++j) {
+      if (j == 0) {
+        depth_status = IntegrateDepth(result, threads);
+        result->integrate_seconds += Seconds(t0, Clock::now());
+      } else {
+        map_status = WriteNormalsFiles(*result, out_dir, provenance, overwrite, threads, maps);
+      }
+    }
+  });
+  std::vector<std::string> written = maps;
+  std::vector<io::Status> status = map_status;
+  io::Status first = FirstError(map_status);
+  if (first.ok()) first = depth_status;
+  if (first.ok()) {
+    const std::vector<std::string> rest(names.begin() + static_cast<int64_t>(maps.size()), names.end());
+    const auto rest_status = WriteNormalsFiles(*result, out_dir, provenance, overwrite, threads, rest);
+    written.insert(written.end(), rest.begin(), rest.end());
+    status.insert(status.end(), rest_status.begin(), rest_status.end());
+    first = FirstError(rest_status);
+  }
+  if (!first.ok()) RemoveWritten(out_dir, written, status);  // no partial output
+  return first;
 }
 
 }  // namespace lumenrig::solvers

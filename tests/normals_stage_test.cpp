@@ -4,6 +4,8 @@
 #include <cmath>
 #include <filesystem>
 #include <fstream>
+#include <thread>
+#include <tuple>
 
 #include <gtest/gtest.h>
 #include <nlohmann/json.hpp>
@@ -51,8 +53,12 @@ struct SphereSession {
   Eigen::Vector3d albedo{0.5, 0.4, 0.3};
 };
 
+// How the OLAT frames are stored: float, half, or float holding the values
+// half would store (the same decoded values as kHalf through a float file).
+enum class OlatStore { kFloat, kHalf, kFloatOfHalf };
+
 SphereSession WriteSphereSession(const std::string& dir, int size, const std::vector<Eigen::Vector3d>& dirs,
-                                 bool with_mask = false) {
+                                 bool with_mask = false, OlatStore store = OlatStore::kFloat) {
   SphereSession s;
   s.dir = dir;
   s.normals = cv::Mat::zeros(size, size, CV_32FC3);
@@ -87,7 +93,14 @@ SphereSession WriteSphereSession(const std::string& dir, int size, const std::ve
         for (int ch = 0; ch < 3; ++ch) f.at<cv::Vec3f>(v, u)[ch] += float(s.albedo[ch] / kPi * shade * inten[ch]);
       }
     const std::string rel = fmt::format("cam00/olat_{:03d}.exr", i);
-    EXPECT_TRUE(io::WriteExr(dir + "/" + rel, f, eo).ok());
+    io::ExrWriteOptions fo = eo;
+    if (store == OlatStore::kHalf) fo.pixel_type = io::PixelType::kHalf;
+    if (store == OlatStore::kFloatOfHalf) {
+      cv::Mat h;
+      f.convertTo(h, CV_16F);
+      h.convertTo(f, CV_32F);
+    }
+    EXPECT_TRUE(io::WriteExr(dir + "/" + rel, f, fo).ok());
     cam["olat"].push_back({{"light", int(i)}, {"path", rel}});
   }
   EXPECT_TRUE(
@@ -139,6 +152,98 @@ TEST(NormalsStageTest, SphereSessionInBandsMatchesClosedFormAndIsThreadIndepende
   for (int c = 0; c < 3; ++c) EXPECT_NEAR(mean_albedo[c], s.albedo[c], 0.01 * s.albedo[c]) << "channel " << c;
   EXPECT_EQ(r1.depth.unit, "pixels");  // no intrinsics
   EXPECT_EQ(r1.depth.method, "frankot-chellappa");
+}
+
+// Half-float frames are kept as half in the band stack and widened per
+// solve tile; the outputs and the rows shown to a decoded-rows observer must
+// equal those of float frames holding the same values (float band stack),
+// over several bands and for 1 and 2 threads.
+TEST(NormalsStageTest, HalfFramesGiveTheOutputsOfTheSameValuesStoredAsFloat) {
+  test::TempDir tmp;
+  const auto dirs = FrontDome(24, 15.0);
+  WriteSphereSession(tmp.path() + "/half", 96, dirs, /*with_mask=*/false, OlatStore::kHalf);
+  WriteSphereSession(tmp.path() + "/float", 96, dirs, /*with_mask=*/false, OlatStore::kFloatOfHalf);
+  auto half = io::LoadSession(tmp.path() + "/half");
+  auto flt = io::LoadSession(tmp.path() + "/float");
+  ASSERT_TRUE(half.ok() && flt.ok());
+  auto probe = io::ProbeImage(half->cameras[0].olat[0].path);
+  ASSERT_TRUE(probe.ok());
+  ASSERT_EQ(probe->pixel_type, "half");
+  // Budgets for 32-row bands (three bands) in both, following the stage's
+  // memory plan: the half stack's rows are half the bytes, and it keeps one
+  // float solve tile of every frame per core.
+  const int64_t fixed = (64ll << 20) + 96 * 96 * 29 + 24 * (4 * 16 * 96 * 3 * 2 + 65536);
+  const int64_t tiles = int64_t{std::thread::hardware_concurrency()} * 24 * 2048 * 3 * 4;
+  const int64_t row_half = 24 * 96 * 3 * 2 + 96 * 3 * 4, row_float = 24 * 96 * 3 * 4 + 96 * 3 * 4;
+  NormalsOptions o;
+  o.mem_budget_bytes = fixed + tiles + (32 * row_half + row_half / 2) * 10 / 9 + 64;
+  // Per frame: sum and sum of squares of every observed row, in row order.
+  auto observe = [](std::vector<std::pair<double, double>>* sums) {
+    return [sums](int frame, const io::ImageInfo&, int, int, const cv::Mat& rows) {
+      (*sums)[static_cast<size_t>(frame)].first += cv::sum(rows)[0] + cv::sum(rows)[1] + cv::sum(rows)[2];
+      (*sums)[static_cast<size_t>(frame)].second += rows.dot(rows);
+    };
+  };
+  std::vector<std::pair<double, double>> seen_half(dirs.size()), seen_float(dirs.size());
+  NormalsOptions oh = o, of = o;
+  of.mem_budget_bytes = fixed + (32 * row_float + row_float / 2) * 10 / 9 + 64;
+  oh.on_decoded_rows = observe(&seen_half);
+  of.on_decoded_rows = observe(&seen_float);
+  NormalsResult rh, rf, rh2;
+  for (auto [session, opts, result, threads] :
+       {std::tuple{&*half, &oh, &rh, 1}, std::tuple{&*flt, &of, &rf, 1}, std::tuple{&*half, &o, &rh2, 2}}) {
+    const io::Status st = SolveNormals(*session, "", *opts, result, threads);
+    ASSERT_TRUE(st.ok()) << st.message();
+  }
+  EXPECT_EQ(rh.band_rows, 32);
+  EXPECT_EQ(rf.band_rows, 32);
+  EXPECT_EQ(rh.lights, 24);
+  for (const NormalsResult* r : {&rh, &rh2}) {
+    EXPECT_EQ(cv::norm(r->normals, rf.normals, cv::NORM_INF), 0.0);
+    EXPECT_EQ(cv::norm(r->albedo, rf.albedo, cv::NORM_INF), 0.0);
+    EXPECT_EQ(cv::norm(r->confidence, rf.confidence, cv::NORM_INF), 0.0);
+    EXPECT_EQ(cv::norm(r->depth.depth, rf.depth.depth, cv::NORM_INF), 0.0);
+  }
+  EXPECT_GT(cv::countNonZero(rh.confidence), 1000);
+  for (size_t i = 0; i < dirs.size(); ++i) {
+    EXPECT_EQ(seen_half[i].first, seen_float[i].first) << "frame " << i;
+    EXPECT_EQ(seen_half[i].second, seen_float[i].second) << "frame " << i;
+  }
+}
+
+// A deferred depth integrated while the maps are written gives the files of
+// the plain path; an existing depth.exr is refused before anything is
+// written.
+TEST(NormalsStageTest, DepthIntegratedWhileWritingMatchesThePlainPath) {
+  test::TempDir tmp;
+  WriteSphereSession(tmp / "s", 64, FrontDome(16, 20.0), /*with_mask=*/true);
+  auto session = io::LoadSession(tmp / "s");
+  ASSERT_TRUE(session.ok());
+  NormalsOptions o;
+  NormalsResult plain, deferred;
+  ASSERT_TRUE(SolveNormals(*session, "", o, &plain, 2).ok());
+  o.defer_depth = true;
+  ASSERT_TRUE(SolveNormals(*session, "", o, &deferred, 2).ok());
+  EXPECT_TRUE(deferred.depth_pending);
+  EXPECT_TRUE(deferred.depth.depth.empty());
+  EXPECT_FALSE(WriteNormalsOutputs(deferred, tmp / "refused", {}, false, 2).ok());
+  EXPECT_FALSE(fs::exists(tmp / "refused/normals.exr"));
+  ASSERT_TRUE(WriteNormalsOutputs(plain, tmp / "plain", {}, false, 2).ok());
+  fs::create_directories(tmp / "overlap");
+  fs::copy_file(tmp / "plain/depth.exr", tmp / "overlap/depth.exr");
+  const io::Status refused = FinishNormalsOutputs(&deferred, tmp / "overlap", {}, false, 2);
+  EXPECT_FALSE(refused.ok());
+  EXPECT_NE(refused.message().find("depth.exr"), std::string::npos) << refused.message();
+  EXPECT_FALSE(fs::exists(tmp / "overlap/normals.exr"));
+  fs::remove(tmp / "overlap/depth.exr");
+  ASSERT_TRUE(FinishNormalsOutputs(&deferred, tmp / "overlap", {}, false, 2).ok());
+  EXPECT_FALSE(deferred.depth_pending);
+  for (const char* f : {"normals.exr", "albedo.exr", "confidence.exr", "depth.exr"}) {
+    auto a = io::ReadImage(tmp / (std::string("plain/") + f)), b = io::ReadImage(tmp / (std::string("overlap/") + f));
+    ASSERT_TRUE(a.ok() && b.ok()) << f;
+    EXPECT_EQ(cv::norm(*a, *b, cv::NORM_INF), 0.0) << f;
+  }
+  EXPECT_TRUE(fs::exists(tmp / "overlap/normals_preview.png"));
 }
 
 TEST(NormalsStageTest, CliWritesOutputsWithHeadersAndRefusesToOverwrite) {

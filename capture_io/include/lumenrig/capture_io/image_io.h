@@ -66,6 +66,14 @@ class BandReader {
   virtual const ImageInfo& info() const = 0;
   /// Reads rows [y0, y1) into *out (resized to (y1-y0) x width, CV_32FC1/3).
   virtual Status ReadRows(int y0, int y1, cv::Mat* out) = 0;
+  /// True when every delivered channel is stored as 16-bit half float
+  /// (OpenEXR), so ReadRowsHalf can deliver the stored values.
+  virtual bool StoresHalf() const { return false; }
+  /// Reads rows [y0, y1) as stored, into *out (resized to (y1-y0) x width,
+  /// CV_16FC1/3), without the decode options; only when StoresHalf(). Half
+  /// the bytes of ReadRows for callers that keep many rows of many frames
+  /// and widen them to float later (converting half to float is exact).
+  virtual Status ReadRowsHalf(int y0, int y1, cv::Mat* out);
 };
 
 enum class PixelType { kHalf, kFloat };

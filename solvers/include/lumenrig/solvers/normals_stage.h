@@ -100,10 +100,20 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
 /// existing files unless `overwrite`, checking all before writing any; files
 /// are compressed concurrently on `threads` (0 = all cores) and removed
 /// again if any of them fails.
+/// The depth must not be pending (see FinishNormalsOutputs).
 io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& out_dir,
                                const std::map<std::string, std::string>& provenance, bool overwrite, int threads = 0);
 
-/// Names of the files WriteNormalsOutputs writes, in order.
+/// WriteNormalsOutputs for a result whose depth SolveNormals deferred
+/// (NormalsOptions::defer_depth): the depth is integrated while normals,
+/// albedo and confidence are compressed and written, then depth.exr and the
+/// preview follow. Same checks, file names and no-partial-output rule;
+/// adds the integration time to result->integrate_seconds.
+io::Status FinishNormalsOutputs(NormalsResult* result, const std::string& out_dir,
+                                const std::map<std::string, std::string>& provenance, bool overwrite, int threads = 0);
+
+/// Names of the files WriteNormalsOutputs writes, in order (depth.exr also
+/// while the depth is pending).
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result);
 
 /// Normals, albedo and depth side by side as an 8-bit BGR image (normals as
