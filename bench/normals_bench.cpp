@@ -228,7 +228,7 @@ int MakeSession(const std::string& dir, int size, int lights) {
   return failures == 0 ? 0 : 1;
 }
 
-int Decode(const std::string& dir, int threads, int rows) {
+int Decode(const std::string& dir, int threads, int rows, bool band_major) {
   auto session = io::LoadSession(dir);
   if (!session.ok()) {
     std::fprintf(stderr, "%s\n", session.status().message().c_str());
@@ -239,19 +239,43 @@ int Decode(const std::string& dir, int threads, int rows) {
   timespec c0{}, c1{};
   clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &c0);
   std::atomic<int> failures{0};
-  io::ParallelFor(0, static_cast<int64_t>(frames.size()), 1, threads, [&](int64_t b, int64_t e) {
-    for (int64_t i = b; i < e; ++i) {
-      auto reader = io::BandReader::Open(frames[static_cast<size_t>(i)].path, {});
-      if (!reader.ok()) {
-        ++failures;
-        continue;
-      }
-      cv::Mat band;
-      const int h = (*reader)->info().height;
-      for (int y = 0; y < h; y += rows)
-        if (!(*reader)->ReadRows(y, std::min(h, y + rows), &band).ok()) ++failures;
+  if (band_major) {
+    // As the normals stage reads: every frame open, one band of rows from
+    // each frame in turn, into one stack.
+    std::vector<std::unique_ptr<io::BandReader>> readers(frames.size());
+    for (size_t i = 0; i < frames.size(); ++i) {
+      auto r = io::BandReader::Open(frames[i].path, {});
+      if (!r.ok()) return 2;
+      readers[i] = std::move(r).value();
     }
-  });
+    const int h = readers[0]->info().height, w = readers[0]->info().width, c = readers[0]->info().channels;
+    std::vector<float> stack(frames.size() * static_cast<size_t>(rows) * w * c);
+    for (int y = 0; y < h; y += rows) {
+      const int y1 = std::min(h, y + rows);
+      io::ParallelFor(0, static_cast<int64_t>(frames.size()), 1, threads, [&](int64_t b, int64_t e) {
+        for (int64_t i = b; i < e; ++i) {
+          cv::Mat band(y1 - y, w, CV_MAKETYPE(CV_32F, c), stack.data() + i * static_cast<int64_t>(rows) * w * c);
+          for (int ys = y; ys < y1; ys += 16) {
+            cv::Mat sub = band.rowRange(ys - y, std::min(y1, ys + 16) - y);
+            if (!readers[static_cast<size_t>(i)]->ReadRows(ys, std::min(y1, ys + 16), &sub).ok()) ++failures;
+          }
+        }
+      });
+    }
+  } else
+    io::ParallelFor(0, static_cast<int64_t>(frames.size()), 1, threads, [&](int64_t b, int64_t e) {
+      for (int64_t i = b; i < e; ++i) {
+        auto reader = io::BandReader::Open(frames[static_cast<size_t>(i)].path, {});
+        if (!reader.ok()) {
+          ++failures;
+          continue;
+        }
+        cv::Mat band;
+        const int h = (*reader)->info().height;
+        for (int y = 0; y < h; y += rows)
+          if (!(*reader)->ReadRows(y, std::min(h, y + rows), &band).ok()) ++failures;
+      }
+    });
   const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &c1);
   const double cpu = (c1.tv_sec - c0.tv_sec) + 1e-9 * (c1.tv_nsec - c0.tv_nsec);
@@ -266,7 +290,9 @@ int main(int argc, char** argv) {
   if (argc >= 5 && std::strcmp(argv[1], "--make-session") == 0)
     return MakeSession(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
   if (argc >= 5 && std::strcmp(argv[1], "--decode") == 0)
-    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
+    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), false);
+  if (argc >= 5 && std::strcmp(argv[1], "--decode-bands") == 0)
+    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), true);
   benchmark::Initialize(&argc, argv);
   RatioReporter reporter;
   benchmark::RunSpecifiedBenchmarks(&reporter);
