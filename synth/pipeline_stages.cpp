@@ -171,7 +171,7 @@ io::Status WriteCheckOutputs(const StageUnitContext& ctx, const solvers::CheckRe
 }
 
 io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
-                              const solvers::NormalsResult& result, std::vector<std::string>* outputs, json* extra);
+                              solvers::NormalsResult* result, std::vector<std::string>* outputs, json* extra);
 io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* options);
 
 io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
@@ -187,9 +187,9 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
   // removes them otherwise). A camera whose solve fails is left to its own
   // unit, which reports the error; the check reads its frames itself.
   //
-  // Each camera's depth integration (single-threaded sparse Cholesky) and
-  // output writes run as a task while the next camera's frames are read,
-  // when the unit's budget holds both; otherwise the next camera waits.
+  // Each camera's depth integration and output writes (overlapping each
+  // other) run as a task while the next camera's frames are read, when the
+  // unit's budget holds both; otherwise the next camera waits.
   if (ctx.fused_normals != nullptr) {
     std::vector<FusedNormalsUnit>& units = *ctx.fused_normals;
     tbb::task_group finishing;
@@ -238,8 +238,7 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
       pending = static_cast<int>(&unit - units.data());
       pending_bytes = result->depth_bytes;
       finishing.run([&ctx, &unit, result]() {
-        unit.done = solvers::IntegrateDepth(result.get(), ctx.threads).ok() &&
-                    WriteNormalsResult(ctx, *unit.camera, unit.unit_dir, *result, &unit.outputs, &unit.extra).ok();
+        unit.done = WriteNormalsResult(ctx, *unit.camera, unit.unit_dir, result.get(), &unit.outputs, &unit.extra).ok();
       });
     }
     wait_pending();
@@ -267,25 +266,29 @@ io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* o
   return io::Status::Ok();
 }
 
+/// Writes a camera's normals outputs; a deferred depth is integrated while
+/// the maps are written (solvers::FinishNormalsOutputs).
 io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
-                              const solvers::NormalsResult& result, std::vector<std::string>* outputs, json* extra) {
+                              solvers::NormalsResult* result, std::vector<std::string>* outputs, json* extra) {
   const std::string dir = Join(unit_dir, "normals");
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
   StageUnitContext camera_ctx = ctx;
   camera_ctx.camera = &camera;
-  LUMENRIG_RETURN_IF_ERROR(
-      solvers::WriteNormalsOutputs(result, dir, Provenance(camera_ctx, "normals"), /*overwrite=*/true));
-  for (const auto& name : solvers::NormalsOutputNames(result)) outputs->push_back(Join(dir, name));
-  (*extra)["bands"] = result.bands;
-  (*extra)["band_rows"] = result.band_rows;
+  LUMENRIG_RETURN_IF_ERROR(solvers::FinishNormalsOutputs(result, dir, Provenance(camera_ctx, "normals"),
+                                                         /*overwrite=*/true, ctx.threads));
+  for (const auto& name : solvers::NormalsOutputNames(*result)) outputs->push_back(Join(dir, name));
+  (*extra)["bands"] = result->bands;
+  (*extra)["band_rows"] = result->band_rows;
   return io::Status::Ok();
 }
 
 io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
                           const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra) {
   solvers::NormalsResult result;
-  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, options, &result, ctx.threads));
-  return WriteNormalsResult(ctx, camera, unit_dir, result, outputs, extra);
+  solvers::NormalsOptions deferred = options;
+  deferred.defer_depth = true;  // integrated while the maps are written
+  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, deferred, &result, ctx.threads));
+  return WriteNormalsResult(ctx, camera, unit_dir, &result, outputs, extra);
 }
 
 io::Status RunNormals(const StageUnitContext& ctx, std::vector<std::string>* outputs, json* extra) {
