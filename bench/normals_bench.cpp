@@ -7,10 +7,14 @@
 //   normals_bench --make-session DIR SIZE LIGHTS
 //                                          writes a Lambertian sphere-on-plane
 //                                          session (half ZIP EXR) with a dome
-//   normals_bench --decode DIR THREADS ROWS
+//   normals_bench --decode DIR THREADS ROWS [half]
 //                                          decodes every frame in ROWS-row bands
-//                                          (the stage's reading work) and prints
-//                                          the wall time
+//                                          to float (or, with `half`, to the
+//                                          stored half floats where the frames
+//                                          store half) and prints the wall time
+//   normals_bench --decode-bands DIR THREADS ROWS
+//                                          the same, band by band across all
+//                                          frames into one float stack
 #include <atomic>
 #include <chrono>
 #include <cmath>
@@ -228,7 +232,7 @@ int MakeSession(const std::string& dir, int size, int lights) {
   return failures == 0 ? 0 : 1;
 }
 
-int Decode(const std::string& dir, int threads, int rows, bool band_major) {
+int Decode(const std::string& dir, int threads, int rows, bool band_major, bool half) {
   auto session = io::LoadSession(dir);
   if (!session.ok()) {
     std::fprintf(stderr, "%s\n", session.status().message().c_str());
@@ -272,15 +276,18 @@ int Decode(const std::string& dir, int threads, int rows, bool band_major) {
         }
         cv::Mat band;
         const int h = (*reader)->info().height;
-        for (int y = 0; y < h; y += rows)
-          if (!(*reader)->ReadRows(y, std::min(h, y + rows), &band).ok()) ++failures;
+        const bool as_half = half && (*reader)->StoresHalf();
+        for (int y = 0; y < h; y += rows) {
+          const int y1 = std::min(h, y + rows);
+          if (!(as_half ? (*reader)->ReadRowsHalf(y, y1, &band) : (*reader)->ReadRows(y, y1, &band)).ok()) ++failures;
+        }
       }
     });
   const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   clock_gettime(CLOCK_PROCESS_CPUTIME_ID, &c1);
   const double cpu = (c1.tv_sec - c0.tv_sec) + 1e-9 * (c1.tv_nsec - c0.tv_nsec);
-  std::printf("decode: %zu frames, %d thread(s), %d-row bands: cpu %.2f s, wall %.2f s\n", frames.size(), threads, rows,
-              cpu, s);
+  std::printf("decode%s: %zu frames, %d thread(s), %d-row bands: cpu %.2f s, wall %.2f s\n", half ? " (half)" : "",
+              frames.size(), threads, rows, cpu, s);
   return failures == 0 ? 0 : 1;
 }
 
@@ -290,9 +297,10 @@ int main(int argc, char** argv) {
   if (argc >= 5 && std::strcmp(argv[1], "--make-session") == 0)
     return MakeSession(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
   if (argc >= 5 && std::strcmp(argv[1], "--decode") == 0)
-    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), false);
+    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), false,
+                  argc >= 6 && std::strcmp(argv[5], "half") == 0);
   if (argc >= 5 && std::strcmp(argv[1], "--decode-bands") == 0)
-    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), true);
+    return Decode(argv[2], std::atoi(argv[3]), std::atoi(argv[4]), true, false);
   benchmark::Initialize(&argc, argv);
   RatioReporter reporter;
   benchmark::RunSpecifiedBenchmarks(&reporter);
