@@ -42,7 +42,8 @@ std::string TimeAndMemoryLine(double wall_s) {
 /// page faults on 4 KiB pages and 33k with it, and its depth solve ran in
 /// 1.5 s instead of 2.7 s. Tunables are read at process start only, so the
 /// process re-executes itself once with the tunable added. Skipped when the
-/// tunable is already set (any value) or LUMENRIG_HUGE_PAGES=0; a failed
+/// tunable is already set (any value), when LUMENRIG_HUGE_PAGES=0, and when
+/// LD_PRELOAD is set (valgrind and profilers preload themselves); a failed
 /// exec just carries on.
 void AskForHugePages(char** argv) {
 #if defined(__linux__) && defined(__GLIBC__)
@@ -51,6 +52,10 @@ void AskForHugePages(char** argv) {
   const char* tunables = std::getenv("GLIBC_TUNABLES");
   std::string value = tunables != nullptr ? tunables : "";
   if (value.find("glibc.malloc.hugetlb") != std::string::npos) return;
+  // Not under a tool that preloads itself (valgrind, heap profilers): the
+  // new process could escape it.
+  const char* preload = std::getenv("LD_PRELOAD");
+  if (preload != nullptr && preload[0] != '\0') return;
   value += (value.empty() ? "" : ":") + std::string("glibc.malloc.hugetlb=1");
   if (setenv("GLIBC_TUNABLES", value.c_str(), 1) != 0) return;
   execv("/proc/self/exe", argv);
