@@ -382,8 +382,12 @@ TEST(PhotometricStereoTest, NormalizeFrameReturnsTheLargestMagnitudeSkippingNaN)
             if (!std::isnan(v)) expected = std::max(expected, std::abs(v));
           }
         EXPECT_EQ(largest, expected) << channels << " channel(s), dark " << with_dark << ", variant " << variant;
-        if (variant == 1) EXPECT_GT(largest, 0.9f);  // -7.75 scaled by at least 1/8
-        if (variant == 2) EXPECT_EQ(largest, inf);
+        if (variant == 1) {
+          EXPECT_GT(largest, 0.9f);  // -7.75 scaled by at least 1/8
+        }
+        if (variant == 2) {
+          EXPECT_EQ(largest, inf);
+        }
         EXPECT_TRUE(std::isnan(f.at<float>(2, 5)));
       }
     }
