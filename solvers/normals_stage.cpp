@@ -261,7 +261,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   // Bands larger than this gain nothing (per-band costs are small) and read
   // slower: 912-row bands of a 2048x2048 156-light view (4G budget) took
   // 21 s of reading CPU against 15 s for 160-row bands; with the half stack,
-  // 32- and 64-row bands read and solved in 17.4 s of CPU, 128-row in 18.1 s.
+  // 32- and 64-row bands read and solved in 17.4-17.6 s of CPU, 128-row in
+  // 18.1 s.
   rows = std::min(rows, std::max<int64_t>(lpb, kMaxBandBytes / row_bytes));
   if (keep_open) rows = rows / lpb * lpb;
   rows = std::min<int64_t>(rows, height);
