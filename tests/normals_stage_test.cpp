@@ -246,6 +246,24 @@ TEST(NormalsStageTest, DepthIntegratedWhileWritingMatchesThePlainPath) {
   EXPECT_TRUE(fs::exists(tmp / "overlap/normals_preview.png"));
 }
 
+// The preview keeps small views at full size and area-averages the panels of
+// large ones down to 1024 pixels on their long side.
+TEST(NormalsStageTest, PreviewPanelsAreAtMost1024PixelsOnTheLongSide) {
+  for (const auto& [rows, cols, out_rows, out_cols] :
+       {std::tuple{64, 48, 64, 3 * 48}, std::tuple{1500, 2100, 731, 3 * 1024}, std::tuple{2048, 1024, 1024, 3 * 512}}) {
+    NormalsResult r;
+    r.normals = cv::Mat(rows, cols, CV_32FC3, cv::Scalar(0.0, 0.0, 1.0));
+    r.albedo = cv::Mat(rows, cols, CV_32FC3, cv::Scalar::all(0.5));
+    r.confidence = cv::Mat(rows, cols, CV_32FC1, cv::Scalar(1.0));
+    const cv::Mat preview = NormalsPreview(r);
+    EXPECT_EQ(preview.rows, out_rows) << rows << "x" << cols;
+    EXPECT_EQ(preview.cols, out_cols) << rows << "x" << cols;
+    // Normal (0, 0, 1) -> (128, 128, 255) in RGB, stored BGR; uniform, so
+    // averaging keeps it.
+    EXPECT_EQ(preview.at<cv::Vec3b>(out_rows / 2, out_cols / 6), cv::Vec3b(255, 128, 128));
+  }
+}
+
 TEST(NormalsStageTest, CliWritesOutputsWithHeadersAndRefusesToOverwrite) {
   test::TempDir tmp;
   WriteSphereSession(tmp / "s", 64, FrontDome(16, 20.0), /*with_mask=*/true);

@@ -117,7 +117,9 @@ io::Status FinishNormalsOutputs(NormalsResult* result, const std::string& out_di
 std::vector<std::string> NormalsOutputNames(const NormalsResult& result);
 
 /// Normals, albedo and depth side by side as an 8-bit BGR image (normals as
-/// (n + 1) / 2, albedo sRGB-encoded, depth near = bright).
+/// (n + 1) / 2, albedo sRGB-encoded, depth near = bright). Panels of views
+/// larger than 1024 pixels on their long side are area-averaged down to
+/// 1024 (a picture to look at; the EXRs hold the data).
 cv::Mat NormalsPreview(const NormalsResult& result);
 
 }  // namespace lumenrig::solvers
