@@ -9,7 +9,8 @@
 # Frankot-Chellappa). SESSION=DIR uses an existing session instead (its first
 # camera), e.g. one from `lumenrig simulate --size 2048x2048 --lights 156`,
 # whose bust has a mask (depth by masked Poisson). Prints the decode time
-# (every frame read through io::BandReader, as the stage does), then for 1G
+# (every frame read through io::BandReader, as the stage does) before each
+# stage run, then for 1G
 # and 4G budgets and both methods the stage's own summary, its peak RSS, and
 # the ratio of the stage's wall time to the decode time.
 set -eu
@@ -26,15 +27,20 @@ du -sh "$dir"
 # to float (what the solve consumes), and to the stored half floats (the
 # cheapest decode; the stage now keeps half frames as half).
 export GLIBC_TUNABLES=glibc.malloc.hugetlb=1
-line=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16)
-echo "$line"
-decode=$(echo "$line" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
-decode_cpu=$(echo "$line" | sed -n 's/.*cpu \([0-9.]*\) s,.*/\1/p')
-hline=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 half)
-echo "$hline"
-hdecode=$(echo "$hline" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
+# This machine's speed drifts over minutes, so each stage run is paired with
+# decodes measured right before it.
+decode_floors() {
+  line=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16)
+  echo "$line"
+  decode=$(echo "$line" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
+  decode_cpu=$(echo "$line" | sed -n 's/.*cpu \([0-9.]*\) s,.*/\1/p')
+  hline=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 half)
+  echo "$hline"
+  hdecode=$(echo "$hline" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
+}
 for method in lsq robust; do
   for budget in 1G 4G; do
+    decode_floors
     log=$(NO_COLOR=1 "$build/cli/lumenrig" normals "$dir" --out "$out" --method "$method" --mem-budget "$budget" \
           --threads "$threads" --force)
     echo "$log" | tail -3
