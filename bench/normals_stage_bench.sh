@@ -8,11 +8,10 @@
 # /tmp/lumenrig-normals-bench; a sphere on a plane, no mask, so depth is
 # Frankot-Chellappa). SESSION=DIR uses an existing session instead (its first
 # camera), e.g. one from `lumenrig simulate --size 2048x2048 --lights 156`,
-# whose bust has a mask (depth by masked Poisson). Prints the decode time
-# (every frame read through io::BandReader, as the stage does) before each
-# stage run, then for 1G
-# and 4G budgets and both methods the stage's own summary, its peak RSS, and
-# the ratio of the stage's wall time to the decode time.
+# whose bust has a mask (depth by masked Poisson). For 1G and 4G budgets and
+# both methods: the decode times right before the run (every frame read
+# through io::BandReader, to float and to half), the stage's own summary, its
+# peak RSS, and the ratios of the stage's time to the decode times.
 set -eu
 build=$1
 size=${2:-2048}
