@@ -278,12 +278,6 @@ class FrameScanner {
       int* gcrow = &gcnt_[static_cast<size_t>(gy) * ctx_.grid_w];
       float rr = 0, rg = 0, rb = 0;
       int64_t rc = 0, rclip = 0;
-      // The grid cell's sum is held in a register while x stays in the cell
-      // (the same additions in the same order as adding into the row each
-      // time, without a store-to-load chain per pixel).
-      int cell = -1;
-      double cell_sum = 0.0;
-      int cell_count = 0;
       for (int x = xb; x < xe; ++x) {
         if (!m[x]) continue;
         float r, g, b;
@@ -297,16 +291,9 @@ class FrameScanner {
         const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale_)));
         ++hist_[bin];
         const int gx = ctx_.grid_x[x];
-        if (gx != cell) {
-          if (cell >= 0) grow[cell] = cell_sum, gcrow[cell] += cell_count;
-          cell = gx;
-          cell_sum = grow[gx];
-          cell_count = 0;
-        }
-        cell_sum += l;
-        ++cell_count;
+        grow[gx] += l;
+        ++gcrow[gx];
       }
-      if (cell >= 0) grow[cell] = cell_sum, gcrow[cell] += cell_count;
       sum_r_ += rr;
       sum_g_ += rg;
       sum_b_ += rb;
