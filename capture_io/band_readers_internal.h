@@ -31,8 +31,4 @@ Expected<std::unique_ptr<BandReader>> OpenTiffBandReader(const std::string& path
 Expected<std::unique_ptr<BandReader>> OpenWholeImageBandReader(const std::string& path, FileFormat format,
                                                                const DecodeOptions& options);
 
-/// Applies decode options to a band already scaled to [0, 1]: sRGB decode
-/// (IEC 61966-2-1) when asked, then black-level subtraction.
-void ApplyDecodeOptions(const DecodeOptions& options, cv::Mat* band);
-
 }  // namespace lumenrig::io

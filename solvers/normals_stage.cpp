@@ -367,7 +367,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
                 if (iter == 0 && options.on_decoded_rows) {
                   cv::Mat& wide = widened[static_cast<size_t>(io::CurrentThreadIndex())];
                   view.convertTo(wide, CV_32F);
-                  if (decode.black_level != 0.0f) wide -= cv::Scalar::all(decode.black_level);
+                  io::ApplyDecodeOptions(decode, &wide);
                   options.on_decoded_rows(static_cast<int>(i), reader->info(), ys, ye, wide);
                 }
                 continue;  // normalised tile by tile in the solve
@@ -620,6 +620,14 @@ void RemoveWritten(const std::string& out_dir, const std::vector<std::string>& n
   }
 }
 
+// Refuses existing outputs (unless `overwrite`) before anything is written,
+// and creates the folder.
+io::Status PrepareOutputs(const std::vector<std::string>& names, const std::string& out_dir, bool overwrite) {
+  for (const auto& name : names)
+    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
+  return io::EnsureDirectory(out_dir);
+}
+
 io::Status FirstError(const std::vector<io::Status>& status) {
   for (const auto& st : status) LUMENRIG_RETURN_IF_ERROR(st);
   return io::Status::Ok();
@@ -632,9 +640,7 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
   if (result.depth_pending)
     return io::Status::Internal("WriteNormalsOutputs: the depth is still pending (use FinishNormalsOutputs)");
   const auto names = NormalsOutputNames(result);
-  for (const auto& name : names)
-    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
-  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+  LUMENRIG_RETURN_IF_ERROR(PrepareOutputs(names, out_dir, overwrite));
   const auto status = WriteNormalsFiles(result, out_dir, provenance, overwrite, threads, names);
   const io::Status first = FirstError(status);
   if (!first.ok()) RemoveWritten(out_dir, names, status);  // no partial output
@@ -645,9 +651,7 @@ io::Status FinishNormalsOutputs(NormalsResult* result, const std::string& out_di
                                 const std::map<std::string, std::string>& provenance, bool overwrite, int threads) {
   if (!result->depth_pending) return WriteNormalsOutputs(*result, out_dir, provenance, overwrite, threads);
   const auto names = NormalsOutputNames(*result);
-  for (const auto& name : names)
-    LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
-  LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
+  LUMENRIG_RETURN_IF_ERROR(PrepareOutputs(names, out_dir, overwrite));
   // The depth needs only the normals and mask, which are final: it is
   // integrated while the three maps are compressed and written.
   const std::vector<std::string> maps = {"normals.exr", "albedo.exr", "confidence.exr"};

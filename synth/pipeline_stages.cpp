@@ -205,7 +205,6 @@ io::Status RunCheck(const StageUnitContext& ctx, std::vector<std::string>* outpu
     };
     solvers::NormalsOptions base;
     LUMENRIG_RETURN_IF_ERROR(NormalsOptionsFromRun(*ctx.options, &base));
-    base.defer_depth = true;
     const auto t0 = std::chrono::steady_clock::now();
     const double c0 = io::ProcessCpuSeconds();
     for (FusedNormalsUnit& unit : units) {
@@ -263,6 +262,8 @@ io::Status NormalsOptionsFromRun(const RunOptions& o, solvers::NormalsOptions* o
   auto m = solvers::ParsePsMethod(method);
   if (!m.ok()) return m.status();
   options->ps.method = *m;
+  // The depth is integrated while the maps are written (WriteNormalsResult).
+  options->defer_depth = true;
   return io::Status::Ok();
 }
 
@@ -285,9 +286,7 @@ io::Status WriteNormalsResult(const StageUnitContext& ctx, const io::Camera& cam
 io::Status RunNormalsInto(const StageUnitContext& ctx, const io::Camera& camera, const std::string& unit_dir,
                           const solvers::NormalsOptions& options, std::vector<std::string>* outputs, json* extra) {
   solvers::NormalsResult result;
-  solvers::NormalsOptions deferred = options;
-  deferred.defer_depth = true;  // integrated while the maps are written
-  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, deferred, &result, ctx.threads));
+  LUMENRIG_RETURN_IF_ERROR(solvers::SolveNormals(*ctx.session, camera.id, options, &result, ctx.threads));
   return WriteNormalsResult(ctx, camera, unit_dir, &result, outputs, extra);
 }
 

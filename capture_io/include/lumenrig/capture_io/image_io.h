@@ -39,6 +39,10 @@ struct DecodeOptions {
 };
 /// The decode options a session asks for.
 DecodeOptions DecodeOptionsFor(const Session& session);
+/// Applies decode options to decoded values (CV_32F, already scaled to
+/// [0, 1] for integer formats): sRGB decode (IEC 61966-2-1) when asked, then
+/// black-level subtraction. What every reader applies after decoding.
+void ApplyDecodeOptions(const DecodeOptions& options, cv::Mat* band);
 
 FileFormat FormatFromPath(const std::string& path);
 const char* FormatName(FileFormat format);
