@@ -180,7 +180,8 @@ TEST(NormalsStageTest, HalfFramesGiveTheOutputsOfTheSameValuesStoredAsFloat) {
   // Per frame: sum and sum of squares of every observed row, in row order.
   auto observe = [](std::vector<std::pair<double, double>>* sums) {
     return [sums](int frame, const io::ImageInfo&, int, int, const cv::Mat& rows) {
-      (*sums)[static_cast<size_t>(frame)].first += cv::sum(rows)[0] + cv::sum(rows)[1] + cv::sum(rows)[2];
+      const cv::Scalar sum = cv::sum(rows);
+      (*sums)[static_cast<size_t>(frame)].first += sum[0] + sum[1] + sum[2];
       (*sums)[static_cast<size_t>(frame)].second += rows.dot(rows);
     };
   };
