@@ -29,7 +29,12 @@ namespace {
 namespace fs = std::filesystem;
 using Clock = std::chrono::steady_clock;
 
-constexpr int64_t kTilePixels = 2048;               // pixels per solve task (fixed: output independent of threads)
+// Pixels per solve task (fixed: output independent of threads). A half
+// stack's tile is widened to float in a per-thread scratch of lights x tile
+// pixels x channels floats: 256 pixels keep a 156-light RGB tile (480 KiB)
+// in a core's L2, where the widening writes it and the solve reads it.
+constexpr int64_t kTilePixels = 2048;
+constexpr int64_t kHalfTilePixels = 256;
 constexpr int64_t kBaselineBytes = 64ll << 20;      // libraries, code, allocator slack
 constexpr int64_t kIntegrationBytesPerPixel = 160;  // FC on the 2H x 2W mirror (float complex)
 // Masked Poisson by sparse Cholesky, per unknown (mask pixel), with its
@@ -229,7 +234,8 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
   bool half_stack = keep_open && decode.encoding == io::Encoding::kLinear;
   for (const auto& r : readers) half_stack = half_stack && r != nullptr && r->StoresHalf();
   const int64_t elem_bytes = half_stack ? 2 : 4;
-  const int64_t tile_bytes = kTilePixels * channels * 4 * static_cast<int64_t>(n);
+  const int64_t tile_px = half_stack ? kHalfTilePixels : kTilePixels;
+  const int64_t tile_bytes = tile_px * channels * 4 * static_cast<int64_t>(n);
   const int64_t fixed = kBaselineBytes + px * (7 * 4 + 1 + (near ? 12 + 12 : 0)) +
                         std::max<int64_t>(0, options.observer_bytes) +
                         (half_stack ? static_cast<int64_t>(io::ResolveThreads(0)) * tile_bytes : 0);
@@ -393,20 +399,20 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
       const double c1 = io::ProcessCpuSeconds();
       const int64_t band_px = static_cast<int64_t>(band_rows) * width;
       const int64_t offset = static_cast<int64_t>(y0) * width;
-      io::ParallelFor(0, band_px, kTilePixels, nthreads, [&](int64_t b, int64_t e) {
+      io::ParallelFor(0, band_px, tile_px, nthreads, [&](int64_t b, int64_t e) {
         BlockInput in;
         const size_t t = static_cast<size_t>(io::CurrentThreadIndex());
         if (half_stack) {
           // Widen this tile of every frame to float and normalise it.
           std::vector<float>& tile = tiles[t];
-          tile.resize(static_cast<size_t>(n * kTilePixels * channels));
+          tile.resize(static_cast<size_t>(n * tile_px * channels));
           const int count = static_cast<int>(e - b);
           const cv::Mat dark_tile = dark_band.empty() ? cv::Mat()
                                                       : cv::Mat(1, count, CV_MAKETYPE(CV_32F, channels),
                                                                 dark_band.ptr<float>() + b * channels);
           for (int i = 0; i < n; ++i) {
             const cv::Mat stored(1, count * channels, CV_16F, band_bytes + (i * slot + b * channels) * 2);
-            float* wide = tile.data() + static_cast<int64_t>(i) * kTilePixels * channels;
+            float* wide = tile.data() + static_cast<int64_t>(i) * tile_px * channels;
             cv::Mat flat(1, count * channels, CV_32F, wide);
             stored.convertTo(flat, CV_32F);
             cv::Mat rows_f(1, count, CV_MAKETYPE(CV_32F, channels), wide);
@@ -415,7 +421,7 @@ io::Status SolveNormals(const io::Session& session, const std::string& camera_id
             tile_max[t][static_cast<size_t>(i)] = std::max(tile_max[t][static_cast<size_t>(i)], largest);
           }
           in.data = tile.data();
-          in.light_stride = kTilePixels * channels;
+          in.light_stride = tile_px * channels;
         } else {
           in.data = band.get() + b * channels;
           in.light_stride = slot;

@@ -22,6 +22,35 @@ constexpr float kPi = 3.14159265358979323846f;
 constexpr double kMaxCondition = 1e6;  // coplanar-light error threshold
 constexpr int kSubTile = 32;           // pixels processed together by the per-pixel path
 
+/// kLanes pixels of the per-pixel path as one vector (GCC/Clang vector
+/// extensions: the compiler emits the target's SIMD instructions). The
+/// path is built for AVX2 and for the baseline (target_clones below); these
+/// helpers are inlined into both and never cross a call, so GCC's note that
+/// 32-byte vectors pass differently without AVX does not apply.
+#if defined(__GNUC__) && !defined(__clang__)
+#pragma GCC diagnostic ignored "-Wpsabi"
+#endif
+constexpr int kLanes = 8;
+using Lanes = float __attribute__((vector_size(4 * kLanes)));
+using LaneMask = int32_t __attribute__((vector_size(4 * kLanes)));  // comparison result: -1 or 0 per lane
+static_assert(kSubTile % kLanes == 0, "the sub-tile is whole vectors");
+[[gnu::always_inline]] inline Lanes Load(const float* p) {
+  Lanes v;
+  std::memcpy(&v, p, sizeof(v));
+  return v;
+}
+[[gnu::always_inline]] inline void Store(float* p, const Lanes& v) { std::memcpy(p, &v, sizeof(v)); }
+[[gnu::always_inline]] inline Lanes Splat(float x) { return Lanes{} + x; }
+/// `value` where `mask` holds, +0 elsewhere (bitwise, no branch).
+[[gnu::always_inline]] inline Lanes Select(const LaneMask& mask, const Lanes& value) {
+  LaneMask bits;
+  std::memcpy(&bits, &value, sizeof(bits));
+  bits &= mask;
+  Lanes out;
+  std::memcpy(&out, &bits, sizeof(out));
+  return out;
+}
+
 /// Gray value of a normalised RGB sample (BT.709 luminance weights).
 inline float Gray3(const float* rgb) { return io::kBt709R * rgb[0] + io::kBt709G * rgb[1] + io::kBt709B * rgb[2]; }
 
@@ -120,6 +149,27 @@ io::Expected<PsSolver> PsSolver::Create(const BlockLights& lights, const PsOptio
   return s;
 }
 
+namespace {
+/// Column sums of squares, sums and lit counts of an n x cols block
+/// (contiguous rows, vectorised), for AVX2 and the baseline (same bits).
+__attribute__((target_clones("avx2", "default"))) void ColumnSums(const float* data, int64_t stride, int n,
+                                                                  int64_t cols, float floor, float* energy, float* sum,
+                                                                  float* lit) {
+  std::fill(energy, energy + cols, 0.0f);
+  std::fill(sum, sum + cols, 0.0f);
+  std::fill(lit, lit + cols, 0.0f);
+  for (int i = 0; i < n; ++i) {
+    const float* row = data + i * stride;
+    for (int64_t j = 0; j < cols; ++j) {
+      const float x = row[j];
+      energy[j] += x * x;
+      sum[j] += x;
+      lit[j] += x > floor ? 1.0f : 0.0f;
+    }
+  }
+}
+}  // namespace
+
 void PsSolver::SolveBlock(const BlockInput& in, const BlockOutputs& out, std::vector<float>* scratch) const {
   if (in.pixels <= 0) return;
   if (options_.method == PsMethod::kLeastSquares && !lights_.near_field()) {
@@ -177,17 +227,7 @@ void PsSolver::SolveLeastSquaresDistant(const BlockInput& in, const BlockOutputs
       g.rightCols(tail) = g_pad.leftCols(tail);
     }
 
-    // Column sums of squares, sums and lit counts (contiguous, vectorised).
-    std::fill(energy, energy + 3 * kSubBlock * c_count, 0.0f);
-    for (int i = 0; i < n; ++i) {
-      const float* row = data + i * in.light_stride;
-      for (int64_t j = 0; j < cols; ++j) {
-        const float x = row[j];
-        energy[j] += x * x;
-        sum[j] += x;
-        lit[j] += x > floor ? 1.0f : 0.0f;
-      }
-    }
+    ColumnSums(data, in.light_stride, n, cols, floor, energy, sum, lit);
 
     for (int64_t kk = 0; kk < k_count; ++kk) {
       const int64_t k = k0 + kk;
@@ -237,19 +277,22 @@ void PsSolver::SolveLeastSquaresDistant(const BlockInput& in, const BlockOutputs
 // pixels vectorise; every pixel's arithmetic is independent of its neighbours.
 namespace {
 template <bool near>
-void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, const BlockInput& in,
-                       const BlockOutputs& out, std::vector<float>* scratch) {
+[[gnu::always_inline]] inline void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_,
+                                                     const BlockInput& in, const BlockOutputs& out,
+                                                     std::vector<float>* scratch) {
   constexpr int T = kSubTile;
   const int n = lights_.count();
   const int c_count = in.channels;
   const bool robust = options_.method == PsMethod::kRobust;
   const size_t nt = static_cast<size_t>(n) * T;
-  // y, valid/weight, vx, vy, vz (near-field only)
-  scratch->resize(nt * (near ? 5 : 2));
+  // y (gray), valid/weight, each channel as stored (for the albedo), and
+  // vx, vy, vz (near-field only); light i's kSubTile values contiguous.
+  scratch->resize(nt * (2 + c_count + (near ? 3 : 0)));
   (void)robust;
   float* y = scratch->data();
   float* w = y + nt;
-  float* vx = w + nt;
+  float* channel[3] = {w + nt, w + nt + (c_count > 1 ? nt : 0), w + nt + (c_count > 2 ? 2 * nt : 0)};
+  float* vx = w + nt * (1 + c_count);
   float* vy = vx + nt;
   float* vz = vy + nt;
 
@@ -272,28 +315,41 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
       for (int t = 0; t < tn; ++t) WriteZero(out, k0 + t);
       continue;
     }
-    // 1. Gather gray values; non-finite samples get validity 0.
+    // 1. Gather gray values and the channels; non-finite samples get
+    // validity 0. Lanes past the last pixel hold zeros.
     float ymax[T], nvalid[T];
-    std::fill(ymax, ymax + T, 0.0f);
-    std::fill(nvalid, nvalid + T, 0.0f);
     for (int i = 0; i < n; ++i) {
       const float* row = in.data + i * in.light_stride + k0 * c_count;
       float* yi = y + static_cast<size_t>(i) * T;
-      float* wi = w + static_cast<size_t>(i) * T;
+      for (int c = 0; c < c_count; ++c) {
+        float* ci = channel[c] + static_cast<size_t>(i) * T;
+        for (int t = 0; t < tn; ++t) ci[t] = row[c_count * t + c];
+        std::fill(ci + tn, ci + T, 0.0f);
+      }
       if (c_count == 3) {
         for (int t = 0; t < tn; ++t) yi[t] = Gray3(row + 3 * t);
       } else {
         for (int t = 0; t < tn; ++t) yi[t] = row[t];
       }
-      for (int t = 0; t < tn; ++t) {
-        const float v = yi[t];
-        // NaN and +-Inf fail this comparison (branch-free finiteness test).
-        const float ok = static_cast<float>(std::abs(v) <= std::numeric_limits<float>::max());
-        yi[t] = ok > 0.0f ? v : 0.0f;
-        wi[t] = ok;
-        ymax[t] = std::max(ymax[t], yi[t]);
-        nvalid[t] += ok;
+      std::fill(yi + tn, yi + T, 0.0f);
+    }
+    for (int c0 = 0; c0 < T; c0 += kLanes) {
+      Lanes ymax_v = Splat(0.0f), nvalid_v = Splat(0.0f);
+      const Lanes one = Splat(1.0f);
+      for (int i = 0; i < n; ++i) {
+        const Lanes v = Load(y + i * T + c0);
+        // |v| <= FLT_MAX compared as bits: NaN and +-Inf fail (no branch).
+        LaneMask bits;
+        std::memcpy(&bits, &v, sizeof(bits));
+        const LaneMask ok = (bits & 0x7fffffff) <= 0x7f7fffff;
+        const Lanes yv = Select(ok, v), ok_v = Select(ok, one);
+        Store(y + i * T + c0, yv);
+        Store(w + i * T + c0, ok_v);
+        ymax_v = ymax_v < yv ? yv : ymax_v;
+        nvalid_v += ok_v;
       }
+      Store(ymax + c0, ymax_v);
+      Store(nvalid + c0, nvalid_v);
     }
     // 2. Light vectors per pixel (near-field): v = (p - x) / |p - x|^3.
     if constexpr (near) {
@@ -310,79 +366,72 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
         }
       }
     }
-    auto lvx = [&](int i, int t) {
-      if constexpr (near)
-        return vx[i * T + t];
-      else
-        return lx[i];
-    };
-    auto lvy = [&](int i, int t) {
-      if constexpr (near)
-        return vy[i * T + t];
-      else
-        return ly[i];
-    };
-    auto lvz = [&](int i, int t) {
-      if constexpr (near)
-        return vz[i * T + t];
-      else
-        return lz[i];
-    };
-
-    // 3. Initial inlier set.
+    // 3. Initial inlier set. Steps 3 and 4 run on kLanes pixels at a time as
+    // vectors (GCC/Clang vector extensions) whose sums stay in registers
+    // while the loop walks the lights; each pixel's arithmetic is that of a
+    // scalar loop over the lights, in the same order.
     float floor_abs[T], lo_a[T], hi_b[T];
     for (int t = 0; t < T; ++t) {
       floor_abs[t] = std::max(min_signal, shadow_floor * ymax[t]);
       lo_a[t] = -1.0f;
       hi_b[t] = std::numeric_limits<float>::infinity();
     }
+    auto light_x = [&](int i, int c0) {
+      if constexpr (near)
+        return Load(vx + i * T + c0);
+      else
+        return Splat(lx[i]);
+    };
+    auto light_y = [&](int i, int c0) {
+      if constexpr (near)
+        return Load(vy + i * T + c0);
+      else
+        return Splat(ly[i]);
+    };
+    auto light_z = [&](int i, int c0) {
+      if constexpr (near)
+        return Load(vz + i * T + c0);
+      else
+        return Splat(lz[i]);
+    };
     if (robust) {
       // Order statistics over the lit samples (above the shadow floor):
       // thresholds at the dark_fraction and (1 - bright_fraction) ranks,
-      // found by bisection on the value (resolution ymax / 2^kBisections)
-      // for all pixels at once.
+      // found by bisection on the value (resolution ymax / 2^kBisections).
       constexpr int kBisections = 7;
-      float hi_a[T], lo_b[T], target_dark[T], target_bright[T], nlit[T];
-      std::fill(nlit, nlit + T, 0.0f);
-      for (int i = 0; i < n; ++i) {
-        const float* yi = y + static_cast<size_t>(i) * T;
-        for (int t = 0; t < T; ++t) nlit[t] += static_cast<float>(yi[t] > floor_abs[t]);
-      }
-      for (int t = 0; t < T; ++t) {
-        lo_a[t] = 0.0f;
-        hi_a[t] = ymax[t];
-        lo_b[t] = 0.0f;
-        hi_b[t] = ymax[t];
-        target_dark[t] = std::floor(static_cast<float>(options_.dark_fraction) * nlit[t]);
-        target_bright[t] = std::floor(static_cast<float>(options_.bright_fraction) * nlit[t]);
-      }
-      for (int it = 0; it < kBisections; ++it) {
-        float mid_a[T], mid_b[T], below[T], above[T];
-        for (int t = 0; t < T; ++t) {
-          mid_a[t] = 0.5f * (lo_a[t] + hi_a[t]);
-          mid_b[t] = 0.5f * (lo_b[t] + hi_b[t]);
-          below[t] = 0.0f;
-          above[t] = 0.0f;
+      const float dark_fraction = static_cast<float>(options_.dark_fraction);
+      const float bright_fraction = static_cast<float>(options_.bright_fraction);
+      for (int c0 = 0; c0 < T; c0 += kLanes) {
+        const Lanes floor_v = Load(floor_abs + c0), one = Splat(1.0f);
+        Lanes nlit = Splat(0.0f);
+        for (int i = 0; i < n; ++i) nlit += Select(Load(y + i * T + c0) > floor_v, one);
+        const Lanes ymax_v = Load(ymax + c0);
+        Lanes lo_a_v = Splat(0.0f), hi_a_v = ymax_v, lo_b_v = Splat(0.0f), hi_b_v = ymax_v;
+        Lanes target_dark, target_bright;
+        for (int q = 0; q < kLanes; ++q) {
+          target_dark[q] = std::floor(dark_fraction * nlit[q]);
+          target_bright[q] = std::floor(bright_fraction * nlit[q]);
         }
-        for (int i = 0; i < n; ++i) {
-          const float* yi = y + static_cast<size_t>(i) * T;
-          for (int t = 0; t < T; ++t) {
-            const float yv = yi[t];
-            const float lit = static_cast<float>(yv > floor_abs[t]);
-            below[t] += static_cast<float>(yv < mid_a[t]) * lit;
-            above[t] += static_cast<float>(yv > mid_b[t]) * lit;
+        const Lanes half = Splat(0.5f);
+        for (int it = 0; it < kBisections; ++it) {
+          const Lanes mid_a = half * (lo_a_v + hi_a_v), mid_b = half * (lo_b_v + hi_b_v);
+          Lanes below = Splat(0.0f), above = Splat(0.0f);
+          for (int i = 0; i < n; ++i) {
+            const Lanes yv = Load(y + i * T + c0);
+            const LaneMask lit = yv > floor_v;
+            below += Select((yv < mid_a) & lit, one);
+            above += Select((yv > mid_b) & lit, one);
           }
+          // Dark threshold: the largest value with at most target samples
+          // below; bright: the smallest with at most target samples above.
+          const LaneMask dark_ok = below <= target_dark, bright_ok = above <= target_bright;
+          lo_a_v = dark_ok ? mid_a : lo_a_v;
+          hi_a_v = dark_ok ? hi_a_v : mid_a;
+          hi_b_v = bright_ok ? mid_b : hi_b_v;
+          lo_b_v = bright_ok ? lo_b_v : mid_b;
         }
-        for (int t = 0; t < T; ++t) {
-          // Dark threshold: the largest value with at most target samples below.
-          const bool dark_ok = below[t] <= target_dark[t];
-          lo_a[t] = dark_ok ? mid_a[t] : lo_a[t];
-          hi_a[t] = dark_ok ? hi_a[t] : mid_a[t];
-          // Bright threshold: the smallest value with at most target samples above.
-          const bool bright_ok = above[t] <= target_bright[t];
-          hi_b[t] = bright_ok ? mid_b[t] : hi_b[t];
-          lo_b[t] = bright_ok ? lo_b[t] : mid_b[t];
-        }
+        Store(lo_a + c0, lo_a_v);
+        Store(hi_b + c0, hi_b_v);
       }
     }
 
@@ -397,47 +446,48 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
     const float min_rel = static_cast<float>(options_.min_relative_scale);
     auto fit = [&](auto mode) {
       constexpr int kMode = decltype(mode)::value;
-      for (int j = 0; j < 6; ++j) std::fill(a[j], a[j] + T, 0.0f);
-      for (int j = 0; j < 3; ++j) std::fill(b[j], b[j] + T, 0.0f);
-      if constexpr (kMode == 2) {
-        for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
-      }
-      for (int i = 0; i < n; ++i) {
-        const float* yi = y + static_cast<size_t>(i) * T;
-        float* wi = w + static_cast<size_t>(i) * T;
-        for (int t = 0; t < T; ++t) {
-          const float x = lvx(i, t), yv = lvy(i, t), z = lvz(i, t);
-          const float yy = yi[t];
-          float ww = wi[t];
+      for (int c0 = 0; c0 < T; c0 += kLanes) {
+        const Lanes zero = Splat(0.0f), one = Splat(1.0f);
+        Lanes a0 = zero, a1 = zero, a2 = zero, a3 = zero, a4 = zero, a5 = zero, b0 = zero, b1 = zero, b2 = zero;
+        Lanes se_v = zero, sw_v = zero, sy_v = zero;
+        const Lanes floor_v = Load(floor_abs + c0), lo_v = Load(lo_a + c0), hi_v = Load(hi_b + c0);
+        const Lanes gx_v = Load(gx + c0), gy_v = Load(gy + c0), gz_v = Load(gz + c0);
+        const Lanes cs_v = Splat(c_tukey) * Load(scale + c0);
+        for (int i = 0; i < n; ++i) {
+          const Lanes x = light_x(i, c0), yv = light_y(i, c0), z = light_z(i, c0);
+          const Lanes yy = Load(y + i * T + c0);
+          Lanes ww = Load(w + i * T + c0);
           if constexpr (kMode == 1) {
-            // Bitwise & (no short circuit) keeps the loop branch-free.
-            const float keep = static_cast<float>((yy >= lo_a[t]) & (yy <= hi_b[t]) & (yy > floor_abs[t]));
-            ww *= keep;
-            wi[t] = ww;
+            ww *= Select((yy >= lo_v) & (yy <= hi_v) & (yy > floor_v), one);
+            Store(w + i * T + c0, ww);
           } else if constexpr (kMode == 2) {
-            const float pred = x * gx[t] + yv * gy[t] + z * gz[t];
-            const float e = yy - pred;
-            se[t] += ww * e * e;
-            sw[t] += ww;
-            sy[t] += ww * yy;
-            const float u = e / (c_tukey * scale[t]);
-            const float tw = 1.0f - u * u;
+            const Lanes pred = x * gx_v + yv * gy_v + z * gz_v;
+            const Lanes e = yy - pred;
+            se_v += ww * e * e;
+            sw_v += ww;
+            sy_v += ww * yy;
+            const Lanes u = e / cs_v;
+            const Lanes tw = one - u * u;
             // Non-finite samples were stored as 0, so the floor test drops them.
-            const float usable = static_cast<float>((yy > floor_abs[t]) & (pred > 0.0f) & (u * u < 1.0f));
+            const Lanes usable = Select((yy > floor_v) & (pred > zero) & (u * u < one), one);
             ww = usable * tw * tw;
-            wi[t] = ww;
+            Store(w + i * T + c0, ww);
           }
-          const float wx = ww * x, wy = ww * yv, wz = ww * z;
-          a[0][t] += wx * x;
-          a[1][t] += wx * yv;
-          a[2][t] += wx * z;
-          a[3][t] += wy * yv;
-          a[4][t] += wy * z;
-          a[5][t] += wz * z;
-          b[0][t] += wx * yy;
-          b[1][t] += wy * yy;
-          b[2][t] += wz * yy;
+          const Lanes wx = ww * x, wy = ww * yv, wz = ww * z;
+          a0 += wx * x;
+          a1 += wx * yv;
+          a2 += wx * z;
+          a3 += wy * yv;
+          a4 += wy * z;
+          a5 += wz * z;
+          b0 += wx * yy;
+          b1 += wy * yy;
+          b2 += wz * yy;
         }
+        Store(a[0] + c0, a0), Store(a[1] + c0, a1), Store(a[2] + c0, a2);
+        Store(a[3] + c0, a3), Store(a[4] + c0, a4), Store(a[5] + c0, a5);
+        Store(b[0] + c0, b0), Store(b[1] + c0, b1), Store(b[2] + c0, b2);
+        if constexpr (kMode == 2) Store(se + c0, se_v), Store(sw + c0, sw_v), Store(sy + c0, sy_v);
       }
       for (int t = 0; t < tn; ++t) {
         double ad[6], bd[3], gd[3];
@@ -461,16 +511,17 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
     } else {
       fit(std::integral_constant<int, 1>());
       // Initial scale: weighted RMS residual of the order-statistics fit.
-      for (int t = 0; t < T; ++t) se[t] = sw[t] = sy[t] = 0.0f;
-      for (int i = 0; i < n; ++i) {
-        const float* yi = y + static_cast<size_t>(i) * T;
-        const float* wi = w + static_cast<size_t>(i) * T;
-        for (int t = 0; t < T; ++t) {
-          const float e = yi[t] - (lvx(i, t) * gx[t] + lvy(i, t) * gy[t] + lvz(i, t) * gz[t]);
-          se[t] += wi[t] * e * e;
-          sw[t] += wi[t];
-          sy[t] += wi[t] * yi[t];
+      for (int c0 = 0; c0 < T; c0 += kLanes) {
+        Lanes se_v = Splat(0.0f), sw_v = Splat(0.0f), sy_v = Splat(0.0f);
+        const Lanes gx_v = Load(gx + c0), gy_v = Load(gy + c0), gz_v = Load(gz + c0);
+        for (int i = 0; i < n; ++i) {
+          const Lanes yi = Load(y + i * T + c0), wi = Load(w + i * T + c0);
+          const Lanes e = yi - (light_x(i, c0) * gx_v + light_y(i, c0) * gy_v + light_z(i, c0) * gz_v);
+          se_v += wi * e * e;
+          sw_v += wi;
+          sy_v += wi * yi;
         }
+        Store(se + c0, se_v), Store(sw + c0, sw_v), Store(sy + c0, sy_v);
       }
       update_scale();
       for (int iter = 0; iter < options_.irls_iterations; ++iter) {
@@ -482,46 +533,76 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
     }
 
     // 5. Normal, per-channel albedo a_c = pi * sum w s y_c / sum w s^2 with
-    // s = n.v, inlier count, conditioning and residual.
-    for (int t = 0; t < tn; ++t) {
-      const int64_t k = k0 + t;
-      const float gn = std::sqrt(gx[t] * gx[t] + gy[t] * gy[t] + gz[t] * gz[t]);
-      const bool masked_out = in.mask && in.mask[k] == 0;
-      if (masked_out || !solved[t] || !(gn > 0.0f) || !std::isfinite(gn) || !(ymax[t] > min_signal)) {
-        WriteZero(out, k);
-        continue;
-      }
-      const float nx = gx[t] / gn, ny = gy[t] / gn, nz = gz[t] / gn;
-      out.normals[3 * k] = nx;
-      out.normals[3 * k + 1] = ny;
-      out.normals[3 * k + 2] = nz;
-      double ss = 0, sc[3] = {0, 0, 0}, se = 0, sw = 0, sy = 0;
-      int inliers = 0;
+    // s = n.v, inlier count, conditioning and residual. Each pixel sums its
+    // lights' terms (rounded to float, as a scalar loop does) in double;
+    // lights of weight 0 add nothing (their terms are selected away, so a
+    // non-finite sample cannot leak in).
+    float nx[T], ny[T], nz[T], gn[T];
+    for (int t = 0; t < T; ++t) {
+      gn[t] = std::sqrt(gx[t] * gx[t] + gy[t] * gy[t] + gz[t] * gz[t]);
+      nx[t] = gx[t] / gn[t];
+      ny[t] = gy[t] / gn[t];
+      nz[t] = gz[t] / gn[t];
+    }
+    using Doubles = double __attribute__((vector_size(4 * kLanes)));  // kLanes / 2 doubles
+    using HalfLanes = float __attribute__((vector_size(2 * kLanes)));
+    constexpr int kHalf = kLanes / 2;
+    struct Sum2 {
+      Doubles lo, hi;  // lanes [0, kHalf) and [kHalf, kLanes)
+    };
+    auto add = [](Sum2* sum, const Lanes& v) {
+      HalfLanes lo, hi;
+      std::memcpy(&lo, &v, sizeof(lo));
+      std::memcpy(&hi, reinterpret_cast<const char*>(&v) + sizeof(lo), sizeof(hi));
+      sum->lo += __builtin_convertvector(lo, Doubles);
+      sum->hi += __builtin_convertvector(hi, Doubles);
+    };
+    auto lane = [](const Sum2& sum, int q) { return q < kHalf ? sum.lo[q] : sum.hi[q - kHalf]; };
+    for (int c0 = 0; c0 < tn; c0 += kLanes) {
+      const Doubles dzero = {};
+      Sum2 ss{dzero, dzero}, sc[3] = {{dzero, dzero}, {dzero, dzero}, {dzero, dzero}};
+      Sum2 se_d{dzero, dzero}, sw_d{dzero, dzero}, sy_d{dzero, dzero};
+      Lanes inliers = Splat(0.0f);
+      const Lanes nx_v = Load(nx + c0), ny_v = Load(ny + c0), nz_v = Load(nz + c0), gn_v = Load(gn + c0);
+      const Lanes zero = Splat(0.0f), one = Splat(1.0f), half = Splat(0.5f), min_signal_v = Splat(min_signal);
       for (int i = 0; i < n; ++i) {
-        const float ww = w[i * T + t];
-        if (ww <= 0.0f) continue;
-        const float s = lvx(i, t) * nx + lvy(i, t) * ny + lvz(i, t) * nz;
-        const float* px = in.data + i * in.light_stride + k * c_count;
-        ss += ww * s * s;
-        for (int c = 0; c < c_count; ++c) sc[c] += ww * s * px[c];
-        const float e = y[i * T + t] - s * gn;
-        se += ww * e * e;
-        sw += ww;
-        sy += ww * y[i * T + t];
-        if (ww > 0.5f && y[i * T + t] > min_signal) ++inliers;
+        const Lanes ww = Load(w + i * T + c0), yv = Load(y + i * T + c0);
+        const LaneMask use = ww > zero;
+        const Lanes s = light_x(i, c0) * nx_v + light_y(i, c0) * ny_v + light_z(i, c0) * nz_v;
+        add(&ss, Select(use, ww * s * s));
+        for (int c = 0; c < c_count; ++c) add(&sc[c], Select(use, ww * s * Load(channel[c] + i * T + c0)));
+        const Lanes e = yv - s * gn_v;
+        add(&se_d, Select(use, ww * e * e));
+        add(&sw_d, Select(use, ww));
+        add(&sy_d, Select(use, ww * yv));
+        inliers += Select((ww > half) & (yv > min_signal_v), one);
       }
-      if (out.albedo) {
-        for (int c = 0; c < 3; ++c) {
-          const double num = c_count == 3 ? sc[c] : sc[0];
-          out.albedo[3 * k + c] = ss > 0 ? static_cast<float>(kPi * num / ss) : 0.0f;
+      for (int q = 0; q < kLanes && c0 + q < tn; ++q) {
+        const int t = c0 + q;
+        const int64_t k = k0 + t;
+        const bool masked_out = in.mask && in.mask[k] == 0;
+        if (masked_out || !solved[t] || !(gn[t] > 0.0f) || !std::isfinite(gn[t]) || !(ymax[t] > min_signal)) {
+          WriteZero(out, k);
+          continue;
         }
-      }
-      if (out.confidence) {
-        double ad[6];
-        for (int j = 0; j < 6; ++j) ad[j] = a[j][t];
-        const double cond = ConditionFromGram(ad);
-        const double rel = sy > 0 ? std::sqrt(se / sw) / (sy / sw) : std::numeric_limits<double>::infinity();
-        out.confidence[k] = PsConfidence(inliers, cond, rel);
+        out.normals[3 * k] = nx[t];
+        out.normals[3 * k + 1] = ny[t];
+        out.normals[3 * k + 2] = nz[t];
+        const double ss_t = lane(ss, q), sw_t = lane(sw_d, q), sy_t = lane(sy_d, q), se_t = lane(se_d, q);
+        if (out.albedo) {
+          for (int c = 0; c < 3; ++c) {
+            const double num = lane(sc[c_count == 3 ? c : 0], q);
+            out.albedo[3 * k + c] = ss_t > 0 ? static_cast<float>(kPi * num / ss_t) : 0.0f;
+          }
+        }
+        if (out.confidence) {
+          double ad[6];
+          for (int j = 0; j < 6; ++j) ad[j] = a[j][t];
+          const double cond = ConditionFromGram(ad);
+          const double rel =
+              sy_t > 0 ? std::sqrt(se_t / sw_t) / (sy_t / sw_t) : std::numeric_limits<double>::infinity();
+          out.confidence[k] = PsConfidence(static_cast<int>(inliers[q]), cond, rel);
+        }
       }
     }
   }
@@ -529,11 +610,30 @@ void SolvePerPixelImpl(const PsOptions& options_, const BlockLights& lights_, co
 
 }  // namespace
 
+namespace {
+// The per-pixel path built twice, for AVX2 and for the x86-64 baseline
+// (GCC/Clang function multi-versioning; the loader picks one per CPU). AVX2
+// brings no FMA, so both versions round every operation alike and give the
+// same bits.
+__attribute__((target_clones("avx2", "default"))) void SolvePerPixelFar(const PsOptions& options,
+                                                                        const BlockLights& lights, const BlockInput& in,
+                                                                        const BlockOutputs& out,
+                                                                        std::vector<float>* scratch) {
+  SolvePerPixelImpl<false>(options, lights, in, out, scratch);
+}
+__attribute__((target_clones("avx2", "default"))) void SolvePerPixelNear(const PsOptions& options,
+                                                                         const BlockLights& lights,
+                                                                         const BlockInput& in, const BlockOutputs& out,
+                                                                         std::vector<float>* scratch) {
+  SolvePerPixelImpl<true>(options, lights, in, out, scratch);
+}
+}  // namespace
+
 void PsSolver::SolvePerPixel(const BlockInput& in, const BlockOutputs& out, std::vector<float>* scratch) const {
   if (lights_.near_field()) {
-    SolvePerPixelImpl<true>(options_, lights_, in, out, scratch);
+    SolvePerPixelNear(options_, lights_, in, out, scratch);
   } else {
-    SolvePerPixelImpl<false>(options_, lights_, in, out, scratch);
+    SolvePerPixelFar(options_, lights_, in, out, scratch);
   }
 }
 
@@ -547,7 +647,10 @@ inline int32_t MagnitudeBits(float v) {
 }
 }  // namespace
 
-float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity, float black_level) {
+// Built for AVX2 and the baseline, like the per-pixel path (same bits).
+__attribute__((target_clones("avx2", "default"))) float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark,
+                                                                       const Eigen::Vector3d& intensity,
+                                                                       float black_level) {
   const int c = frame->channels();
   float scale[3];
   if (c == 3) {
@@ -570,34 +673,29 @@ float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d&
     const float* d = dark.empty() ? nullptr : dark.ptr<float>(r);
     int j = 0;
 #if defined(__GNUC__)
-    // Four RGB pixels (or twelve gray ones) per step as three 4-float
-    // vectors (GCC/Clang vector extensions), whose scale patterns are fixed.
-    using F4 = float __attribute__((vector_size(16)));
-    using I4 = int32_t __attribute__((vector_size(16)));
-    float pattern_values[12];
-    for (int k = 0; k < 12; ++k) pattern_values[k] = scale[k % c];
-    F4 pattern[3];
+    // kLanes RGB pixels (or 3 kLanes gray ones) per step as three vectors
+    // (GCC/Clang vector extensions), whose scale patterns are fixed.
+    constexpr int kStep = 3 * kLanes;
+    float pattern_values[kStep];
+    for (int k = 0; k < kStep; ++k) pattern_values[k] = scale[k % c];
+    Lanes pattern[3];
     std::memcpy(pattern, pattern_values, sizeof(pattern));
-    const F4 black4 = {black, black, black, black};
-    const I4 abs_mask = {0x7fffffff, 0x7fffffff, 0x7fffffff, 0x7fffffff};
-    const I4 inf_bits = {0x7f800000, 0x7f800000, 0x7f800000, 0x7f800000};
-    const I4 zero = {0, 0, 0, 0};
-    I4 m4 = zero;
-    for (; j + 12 <= n; j += 12) {
+    const Lanes black_v = Splat(black);
+    const LaneMask zero = {};
+    LaneMask m = zero;
+    for (; j + kStep <= n; j += kStep) {
       for (int q = 0; q < 3; ++q) {
-        F4 x, dk = {0, 0, 0, 0};
-        std::memcpy(&x, p + j + 4 * q, sizeof(x));
-        if (d != nullptr) std::memcpy(&dk, d + j + 4 * q, sizeof(dk));
-        const F4 v = ((x - black4) - dk) * pattern[q];
-        std::memcpy(p + j + 4 * q, &v, sizeof(v));
-        I4 bits;
+        const Lanes dk = d != nullptr ? Load(d + j + kLanes * q) : Splat(0.0f);
+        const Lanes v = ((Load(p + j + kLanes * q) - black_v) - dk) * pattern[q];
+        Store(p + j + kLanes * q, v);
+        LaneMask bits;
         std::memcpy(&bits, &v, sizeof(bits));
-        bits &= abs_mask;
-        bits = bits > inf_bits ? zero : bits;
-        m4 = m4 > bits ? m4 : bits;
+        bits &= 0x7fffffff;
+        bits = bits > 0x7f800000 ? zero : bits;
+        m = m > bits ? m : bits;
       }
     }
-    for (int k = 0; k < 4; ++k) largest_bits = std::max(largest_bits, static_cast<int32_t>(m4[k]));
+    for (int k = 0; k < kLanes; ++k) largest_bits = std::max(largest_bits, static_cast<int32_t>(m[k]));
 #endif
     for (; j < n; ++j) {
       const float v = ((p[j] - black) - (d != nullptr ? d[j] : 0.0f)) * scale[(j % c)];

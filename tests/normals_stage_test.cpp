@@ -173,7 +173,7 @@ TEST(NormalsStageTest, HalfFramesGiveTheOutputsOfTheSameValuesStoredAsFloat) {
   // memory plan: the half stack's rows are half the bytes, and it keeps one
   // float solve tile of every frame per core.
   const int64_t fixed = (64ll << 20) + 96 * 96 * 29 + 24 * (4 * 16 * 96 * 3 * 2 + 65536);
-  const int64_t tiles = int64_t{std::thread::hardware_concurrency()} * 24 * 2048 * 3 * 4;
+  const int64_t tiles = int64_t{std::thread::hardware_concurrency()} * 24 * 256 * 3 * 4;  // 256-pixel tiles
   const int64_t row_half = 24 * 96 * 3 * 2 + 96 * 3 * 4, row_float = 24 * 96 * 3 * 4 + 96 * 3 * 4;
   NormalsOptions o;
   o.mem_budget_bytes = fixed + tiles + (32 * row_half + row_half / 2) * 10 / 9 + 64;
