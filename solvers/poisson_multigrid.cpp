@@ -15,7 +15,10 @@ namespace lumenrig::solvers::internal {
 namespace {
 
 /// One level of the hierarchy: a weighted graph Laplacian
-/// (A x)_i = diag_i x_i - sum_j w_ij x_j over the level's unknowns.
+/// (A x)_i = diag_i x_i - sum_j w_ij x_j over the level's unknowns. The
+/// V-cycle works in single precision (conjugate gradients stay in double):
+/// it only has to approximate A^-1, and it is bound by memory traffic, which
+/// floats halve. The finest level's edges all weigh 1 and are not stored.
 /// Every unknown sits in a cell of the level's grid (the pixel grid halved
 /// `level` times); edges join unknowns of 4-adjacent cells only, so colouring
 /// cells by (v + u) parity makes a red-black ordering: unknowns [0, red) are
@@ -25,12 +28,12 @@ struct Level {
   std::vector<int> cell_v, cell_u;
   std::vector<int64_t> edge_begin;   // edges of unknown i: [edge_begin[i], edge_begin[i + 1])
   std::vector<int> edge_to;          // the other unknown j
-  std::vector<double> edge_w;        // w_ij > 0
-  std::vector<double> diag;          // sum of the row's weights; 1 for an unknown without edges
+  std::vector<float> edge_w;         // w_ij > 0 (empty when every weight is 1)
+  std::vector<float> diag;           // sum of the row's weights; 1 for an unknown without edges
   std::vector<int> parent;           // the coarser level's unknown (aggregate) of each unknown
   std::vector<int64_t> child_begin;  // coarser -> finer: children of unknown k are
   std::vector<int> children;         // children[child_begin[k] .. child_begin[k + 1])
-  std::vector<double> x, b, r;
+  std::vector<float> x, b, r;
 };
 
 /// Chunks of unknowns (io::ParallelFor's fixed chunks), serial when small.
@@ -41,17 +44,17 @@ void ForChunks(int64_t begin, int64_t end, int threads, const std::function<void
 
 /// Diagonal, red count and work vectors once cells and edges are set.
 void FinishLevel(Level* l) {
-  l->diag.assign(l->n, 0.0);
+  l->diag.assign(l->n, 0.0f);
   for (int64_t i = 0; i < l->n; ++i) {
-    double d = 0;
-    for (int64_t k = l->edge_begin[i]; k < l->edge_begin[i + 1]; ++k) d += l->edge_w[k];
-    l->diag[i] = d > 0 ? d : 1.0;
+    float d = 0;
+    for (int64_t k = l->edge_begin[i]; k < l->edge_begin[i + 1]; ++k) d += l->edge_w.empty() ? 1.0f : l->edge_w[k];
+    l->diag[i] = d > 0 ? d : 1.0f;
   }
   l->red = 0;
   while (l->red < l->n && ((l->cell_v[l->red] + l->cell_u[l->red]) & 1) == 0) ++l->red;
-  l->x.assign(l->n, 0.0);
-  l->b.assign(l->n, 0.0);
-  l->r.assign(l->n, 0.0);
+  l->x.assign(l->n, 0.0f);
+  l->b.assign(l->n, 0.0f);
+  l->r.assign(l->n, 0.0f);
 }
 
 /// The coarser level. Unknowns of one 2 x 2 block of cells that are joined
@@ -130,12 +133,13 @@ Level Coarsen(Level& f) {
       for (int64_t e = f.edge_begin[i]; e < f.edge_begin[i + 1]; ++e) {
         const int other = f.parent[f.edge_to[e]];
         if (other == k) continue;
+        const float half_w = 0.5f * (f.edge_w.empty() ? 1.0f : f.edge_w[e]);
         if (slot[other] < row_start) {
           slot[other] = static_cast<int64_t>(c.edge_to.size());
           c.edge_to.push_back(other);
-          c.edge_w.push_back(0.5 * f.edge_w[e]);
+          c.edge_w.push_back(half_w);
         } else {
-          c.edge_w[slot[other]] += 0.5 * f.edge_w[e];
+          c.edge_w[slot[other]] += half_w;
         }
       }
     }
@@ -146,33 +150,49 @@ Level Coarsen(Level& f) {
 }
 
 /// sum_j w_ij x_j over the edges of unknown i.
-inline double NeighbourSum(const Level& l, int64_t i) {
-  double s = 0;
-  for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k) s += l.edge_w[k] * l.x[l.edge_to[k]];
+template <bool kUnit>
+inline float NeighbourSum(const Level& l, int64_t i) {
+  float s = 0;
+  for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k)
+    s += kUnit ? l.x[l.edge_to[k]] : l.edge_w[k] * l.x[l.edge_to[k]];
   return s;
 }
 
 /// One red-black Gauss-Seidel half sweep over [begin, end) (one colour):
 /// each update reads only the other colour, so the chunks may run in any
 /// order and the result is the same.
+template <bool kUnit>
+void SweepRange(Level& l, int64_t b, int64_t e) {
+  for (int64_t i = b; i < e; ++i) l.x[i] = (l.b[i] + NeighbourSum<kUnit>(l, i)) / l.diag[i];
+}
 void Sweep(Level& l, int64_t begin, int64_t end, int threads) {
   ForChunks(begin, end, threads, [&](int64_t b, int64_t e) {
-    for (int64_t i = b; i < e; ++i) l.x[i] = (l.b[i] + NeighbourSum(l, i)) / l.diag[i];
+    if (l.edge_w.empty())
+      SweepRange<true>(l, b, e);
+    else
+      SweepRange<false>(l, b, e);
   });
 }
 
 /// r = b - A x on the fine level, then the coarse right-hand side = the sum
 /// of r over each aggregate.
+template <bool kUnit>
+void ResidualRange(Level& f, int64_t b, int64_t e) {
+  for (int64_t i = b; i < e; ++i) f.r[i] = f.b[i] - f.diag[i] * f.x[i] + NeighbourSum<kUnit>(f, i);
+}
 void RestrictResidual(Level& f, Level& c, int threads) {
   ForChunks(0, f.n, threads, [&](int64_t b, int64_t e) {
-    for (int64_t i = b; i < e; ++i) f.r[i] = f.b[i] - f.diag[i] * f.x[i] + NeighbourSum(f, i);
+    if (f.edge_w.empty())
+      ResidualRange<true>(f, b, e);
+    else
+      ResidualRange<false>(f, b, e);
   });
   ForChunks(0, c.n, threads, [&](int64_t b, int64_t e) {
     for (int64_t k = b; k < e; ++k) {
-      double s = 0;
+      float s = 0;
       for (int64_t j = c.child_begin[k]; j < c.child_begin[k + 1]; ++j) s += f.r[c.children[j]];
       c.b[k] = s;
-      c.x[k] = 0.0;
+      c.x[k] = 0.0f;
     }
   });
 }
@@ -204,14 +224,17 @@ class Hierarchy {
     fine.edge_begin.assign(fine.n + 1, 0);
     fine.edge_to.reserve(a.nonZeros());
     fine.edge_w.reserve(a.nonZeros());
+    bool unit = true;
     for (int64_t k = 0; k < fine.n; ++k) {
       for (Eigen::SparseMatrix<double>::InnerIterator it(a, from_level_[k]); it; ++it) {
         if (it.row() == from_level_[k]) continue;
         fine.edge_to.push_back(to_level_[it.row()]);
-        fine.edge_w.push_back(-it.value());
+        fine.edge_w.push_back(static_cast<float>(-it.value()));
+        unit = unit && it.value() == -1.0;
       }
       fine.edge_begin[k + 1] = static_cast<int64_t>(fine.edge_to.size());
     }
+    if (unit) std::vector<float>().swap(fine.edge_w);
     FinishLevel(&fine);
     levels_.push_back(std::move(fine));
     // Coarser levels down to a size the sparse Cholesky solves at once, or
@@ -231,7 +254,7 @@ class Hierarchy {
     Level& fine = levels_.front();
     const int64_t n = fine.n;
     ForChunks(0, n, threads_, [&](int64_t b, int64_t e) {
-      for (int64_t k = b; k < e; ++k) fine.b[to_level_[k]] = r[k], fine.x[k] = 0.0;
+      for (int64_t k = b; k < e; ++k) fine.b[to_level_[k]] = static_cast<float>(r[k]), fine.x[k] = 0.0f;
     });
     VCycle(0);
     Eigen::VectorXd out(n);
@@ -249,7 +272,8 @@ class Hierarchy {
       // A relative ridge keeps each floating part definite; a preconditioner
       // need not be exact on the per-part constants.
       t.emplace_back(i, i, l.diag[i] * (1.0 + 1e-6));
-      for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k) t.emplace_back(i, l.edge_to[k], -l.edge_w[k]);
+      for (int64_t k = l.edge_begin[i]; k < l.edge_begin[i + 1]; ++k)
+        t.emplace_back(i, l.edge_to[k], l.edge_w.empty() ? -1.0 : -static_cast<double>(l.edge_w[k]));
     }
     Eigen::SparseMatrix<double> m(l.n, l.n);
     m.setFromTriplets(t.begin(), t.end());
@@ -259,8 +283,8 @@ class Hierarchy {
   void VCycle(size_t level) {
     Level& l = levels_[level];
     if (level + 1 == levels_.size()) {
-      const Eigen::VectorXd x = coarse_.solve(Eigen::Map<const Eigen::VectorXd>(l.b.data(), l.n));
-      std::copy(x.data(), x.data() + l.n, l.x.begin());
+      const Eigen::VectorXd x = coarse_.solve(Eigen::Map<const Eigen::VectorXf>(l.b.data(), l.n).cast<double>());
+      for (int64_t i = 0; i < l.n; ++i) l.x[i] = static_cast<float>(x[i]);
       return;
     }
     // Pre-smoothing red then black, post-smoothing black then red: the
