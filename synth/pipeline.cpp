@@ -9,6 +9,7 @@
 #include <fstream>
 #include <map>
 #include <mutex>
+#include <set>
 
 #include <tbb/flow_graph.h>
 
@@ -135,6 +136,35 @@ io::Status PlanRun(const RunOptions& options, RunPlan* plan) {
   }
 
   io::FileHashCache hashes(HashCachePath(options));
+  {
+    // Hash every input file once, on all threads, before the units are
+    // planned (which then find each hash in the cache): the files are read
+    // whole, so hashing them one by one would leave the other cores idle
+    // for as long as it takes to read the session.
+    std::vector<std::string> files;
+    std::set<std::string> seen;
+    for (const auto& session : plan->sessions)
+      for (const auto& adapter : internal::StageAdapters()) {
+        if (adapter.kind == StageKind::kPairs && options.envs_dir.empty()) continue;
+        std::vector<const io::Camera*> cams;
+        if (adapter.per_camera) {
+          for (const auto& c : session.cameras) cams.push_back(&c);
+        } else {
+          cams.push_back(nullptr);
+        }
+        for (const io::Camera* cam : cams)
+          for (const auto& f : adapter.input_files(options, session, cam))
+            if (seen.insert(f).second) files.push_back(f);
+      }
+    std::vector<io::Status> errors(files.size());
+    io::ParallelFor(0, static_cast<int64_t>(files.size()), 1, options.threads, [&](int64_t b, int64_t e) {
+      for (int64_t i = b; i < e; ++i) {
+        auto h = hashes.Hash(files[static_cast<size_t>(i)]);
+        if (!h.ok()) errors[static_cast<size_t>(i)] = h.status();
+      }
+    });
+    for (const auto& st : errors) LUMENRIG_RETURN_IF_ERROR(st);
+  }
 
   auto selected = [&](StageKind k) {
     for (auto s : options.stages)
