@@ -20,6 +20,11 @@ namespace lumenrig::solvers::check_detail {
 namespace {
 
 constexpr int kHistBins = 4096;
+// Interleaved copies of the histogram (pixel x counts into copy x mod
+// kHistCopies): neighbouring pixels usually fall in one bin, and a single
+// copy would make every increment wait for the previous one's store.
+constexpr int kHistCopies = 4;
+static_assert((kHistCopies & (kHistCopies - 1)) == 0, "x mod kHistCopies is a mask");
 
 /// Per-camera state built before the OLAT pass.
 struct CameraContext {
@@ -159,7 +164,7 @@ class FrameScanner {
       mh_ = H_ / mf_;
       macc_.assign(static_cast<size_t>(mw_) * mh_, 0.0f);
     }
-    hist_.assign(kHistBins, 0);
+    hist_.assign(static_cast<size_t>(kHistBins) * kHistCopies, 0);
     hist_scale_ = kHistBins / (saturation_ * 1.0625);
     sat_ = static_cast<float>(saturation_ * (1.0 - 1e-3));
     sum_r_ = sum_g_ = sum_b_ = sum_abs_d_ = 0;
@@ -197,7 +202,7 @@ class FrameScanner {
       int64_t acc = 0;
       int bin = 0;
       for (; bin < kHistBins; ++bin) {
-        acc += hist_[bin];
+        for (int k = 0; k < kHistCopies; ++k) acc += hist_[static_cast<size_t>(k) * kHistBins + bin];
         if (acc >= target) break;
       }
       s->p99 = (bin + 0.5) / hist_scale_ - ctx_.dark_lum;
@@ -251,7 +256,7 @@ class FrameScanner {
     const double tscale = options.thumbnail_px / std::max(1, std::max(ctx.width, ctx.height));
     const int64_t tw = std::max(1, static_cast<int>(std::lround(ctx.width * std::min(1.0, tscale))));
     const int64_t th = std::max(1, static_cast<int>(std::lround(ctx.height * std::min(1.0, tscale))));
-    return tw * th * (3 * 8 + 4) + int64_t{kHistBins} * 8 + int64_t{ctx.grid_w} * ctx.grid_h * 12 +
+    return tw * th * (3 * 8 + 4) + int64_t{kHistBins} * kHistCopies * 8 + int64_t{ctx.grid_w} * ctx.grid_h * 12 +
            int64_t{ctx.width} * 5 + 4096;
   }
 
@@ -278,6 +283,13 @@ class FrameScanner {
       int* gcrow = &gcnt_[static_cast<size_t>(gy) * ctx_.grid_w];
       float rr = 0, rg = 0, rb = 0;
       int64_t rc = 0, rclip = 0;
+      // The grid cell's sum is held in a register while x stays in the cell
+      // (the same additions in the same order as adding into the row each
+      // time, without a store-to-load chain per pixel).
+      int cell = -1;
+      double cell_sum = 0.0;
+      int cell_count = 0;
+      int64_t* hist = hist_.data();
       for (int x = xb; x < xe; ++x) {
         if (!m[x]) continue;
         float r, g, b;
@@ -289,11 +301,18 @@ class FrameScanner {
         ++rc;
         rclip += std::max(r, std::max(g, b)) >= sat ? 1 : 0;
         const int bin = std::min(kHistBins - 1, std::max(0, static_cast<int>(l * hist_scale_)));
-        ++hist_[bin];
+        ++hist[(x & (kHistCopies - 1)) * kHistBins + bin];
         const int gx = ctx_.grid_x[x];
-        grow[gx] += l;
-        ++gcrow[gx];
+        if (gx != cell) {
+          if (cell >= 0) grow[cell] = cell_sum, gcrow[cell] += cell_count;
+          cell = gx;
+          cell_sum = grow[gx];
+          cell_count = 0;
+        }
+        cell_sum += l;
+        ++cell_count;
       }
+      if (cell >= 0) grow[cell] = cell_sum, gcrow[cell] += cell_count;
       sum_r_ += rr;
       sum_g_ += rg;
       sum_b_ += rb;
