@@ -1,15 +1,11 @@
 #include "lumenrig/capture_io/content_hash.h"
 
-#include <cerrno>
 #include <cstdio>
 #include <filesystem>
 #include <fstream>
 #include <vector>
 
-#include <fcntl.h>
-#include <sys/mman.h>
 #include <sys/stat.h>
-#include <unistd.h>
 #include <xxhash.h>
 #include <nlohmann/json.hpp>
 
@@ -22,34 +18,15 @@ namespace lumenrig::io {
 uint64_t HashBytes(const void* data, size_t size, uint64_t seed) { return XXH3_64bits_withSeed(data, size, seed); }
 
 Expected<uint64_t> HashFile(const std::string& path) {
-  // Mapped, the page cache's pages are hashed in place instead of being
-  // copied into a buffer first (the copy cost more than the hash).
-  const int fd = ::open(path.c_str(), O_RDONLY | O_CLOEXEC);
-  if (fd < 0) return Status::BadInput(fmt::format("{}: cannot open for hashing", path));
-  struct stat st {};
-  if (::fstat(fd, &st) == 0 && S_ISREG(st.st_mode) && st.st_size > 0) {
-    const size_t size = static_cast<size_t>(st.st_size);
-    void* map = ::mmap(nullptr, size, PROT_READ, MAP_PRIVATE | MAP_POPULATE, fd, 0);
-    if (map != MAP_FAILED) {
-      const uint64_t h = XXH3_64bits(map, size);
-      ::munmap(map, size);
-      ::close(fd);
-      return h;
-    }
-  }
-  // Empty, special or unmappable files: read in blocks.
+  std::FILE* f = std::fopen(path.c_str(), "rb");
+  if (f == nullptr) return Status::BadInput(fmt::format("{}: cannot open for hashing", path));
   XXH3_state_t* state = XXH3_createState();
   XXH3_64bits_reset(state);
   std::vector<char> buffer(size_t{4} << 20);
-  bool failed = false;
-  for (;;) {
-    const ssize_t n = ::read(fd, buffer.data(), buffer.size());
-    if (n < 0 && errno == EINTR) continue;
-    if (n < 0) failed = true;
-    if (n <= 0) break;
-    XXH3_64bits_update(state, buffer.data(), static_cast<size_t>(n));
-  }
-  ::close(fd);
+  size_t n = 0;
+  while ((n = std::fread(buffer.data(), 1, buffer.size(), f)) > 0) XXH3_64bits_update(state, buffer.data(), n);
+  const bool failed = std::ferror(f) != 0;
+  std::fclose(f);
   const uint64_t h = XXH3_64bits_digest(state);
   XXH3_freeState(state);
   if (failed) return Status::BadInput(fmt::format("{}: read error while hashing", path));

@@ -17,8 +17,7 @@ namespace lumenrig::io {
 uint64_t HashBytes(const void* data, size_t size, uint64_t seed = 0);
 inline uint64_t HashString(const std::string& s, uint64_t seed = 0) { return HashBytes(s.data(), s.size(), seed); }
 
-/// XXH3-64 of a file's bytes (hashed where the file is mapped; special files
-/// streamed in 4 MiB blocks); the error names the file.
+/// XXH3-64 of a file's bytes, streamed in 4 MiB blocks; error names the file.
 Expected<uint64_t> HashFile(const std::string& path);
 
 /// 16 lowercase hex digits.
