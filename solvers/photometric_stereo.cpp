@@ -317,7 +317,7 @@ template <bool near>
     }
     // 1. Gather gray values and the channels; non-finite samples get
     // validity 0. Lanes past the last pixel hold zeros.
-    float ymax[T], nvalid[T];
+    float ymax[T];
     for (int i = 0; i < n; ++i) {
       const float* row = in.data + i * in.light_stride + k0 * c_count;
       float* yi = y + static_cast<size_t>(i) * T;
@@ -334,7 +334,7 @@ template <bool near>
       std::fill(yi + tn, yi + T, 0.0f);
     }
     for (int c0 = 0; c0 < T; c0 += kLanes) {
-      Lanes ymax_v = Splat(0.0f), nvalid_v = Splat(0.0f);
+      Lanes ymax_v = Splat(0.0f);
       const Lanes one = Splat(1.0f);
       for (int i = 0; i < n; ++i) {
         const Lanes v = Load(y + i * T + c0);
@@ -346,10 +346,8 @@ template <bool near>
         Store(y + i * T + c0, yv);
         Store(w + i * T + c0, ok_v);
         ymax_v = ymax_v < yv ? yv : ymax_v;
-        nvalid_v += ok_v;
       }
       Store(ymax + c0, ymax_v);
-      Store(nvalid + c0, nvalid_v);
     }
     // 2. Light vectors per pixel (near-field): v = (p - x) / |p - x|^3.
     if constexpr (near) {
