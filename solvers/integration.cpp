@@ -119,11 +119,11 @@ cv::Mat FrankotChellappa(const Field& f, int threads) {
 struct PoissonSystem {
   cv::Mat index;  // CV_32S, unknown of each valid pixel, -1 elsewhere
   int count = 0;
-  Eigen::SparseMatrix<double> a;
+  Eigen::SparseMatrix<double> a;  // assembled for the direct solve only
   Eigen::VectorXd rhs;
 };
 
-PoissonSystem BuildPoisson(const Field& f) {
+PoissonSystem BuildPoisson(const Field& f, bool with_matrix) {
   PoissonSystem sys;
   const int h = f.p.rows, w = f.p.cols;
   sys.index = cv::Mat(h, w, CV_32S, cv::Scalar(-1));
@@ -136,10 +136,35 @@ PoissonSystem BuildPoisson(const Field& f) {
   }
   sys.count = count;
   if (count == 0) return sys;
+  const cv::Mat& index = sys.index;
+  sys.rhs = Eigen::VectorXd::Zero(count);
+  Eigen::VectorXd& rhs = sys.rhs;
+  // Right-hand side: per edge f[b] - f[a] = g (forward difference, mean
+  // gradient), summed in the order above, left, right, below.
+  auto rhs_row = [&](int v) {
+    const int* id = index.ptr<int>(v);
+    const int* above = v > 0 ? index.ptr<int>(v - 1) : nullptr;
+    const int* below = v + 1 < h ? index.ptr<int>(v + 1) : nullptr;
+    const float* p = f.p.ptr<float>(v);
+    const float* q = f.q.ptr<float>(v);
+    const float* q_above = v > 0 ? f.q.ptr<float>(v - 1) : nullptr;
+    const float* q_below = v + 1 < h ? f.q.ptr<float>(v + 1) : nullptr;
+    for (int u = 0; u < w; ++u) {
+      const int i = id[u];
+      if (i < 0) continue;
+      double r = 0;
+      if (above && above[u] >= 0) r += 0.5 * (q_above[u] + q[u]);
+      if (u > 0 && id[u - 1] >= 0) r += 0.5 * (p[u - 1] + p[u]);
+      if (u + 1 < w && id[u + 1] >= 0) r -= 0.5 * (p[u] + p[u + 1]);
+      if (below && below[u] >= 0) r -= 0.5 * (q[u] + q_below[u]);
+      rhs[i] = r;
+    }
+  };
+  for (int v = 0; v < h; ++v) rhs_row(v);
+  if (!with_matrix) return sys;
   // Column a of the (symmetric) matrix holds, in increasing row order, the
   // unknowns above, left, a itself, right and below: written straight into
   // Eigen's compressed storage.
-  const cv::Mat& index = sys.index;
   int64_t nnz = count;
   for (int v = 0; v < h; ++v) {
     const int* id = index.ptr<int>(v);
@@ -155,36 +180,28 @@ PoissonSystem BuildPoisson(const Field& f) {
   int* outer = a.outerIndexPtr();
   int* inner = a.innerIndexPtr();
   double* value = a.valuePtr();
-  sys.rhs = Eigen::VectorXd::Zero(count);
-  Eigen::VectorXd& rhs = sys.rhs;
   int64_t k = 0;
   for (int v = 0; v < h; ++v) {
     const int* id = index.ptr<int>(v);
     const int* above = v > 0 ? index.ptr<int>(v - 1) : nullptr;
     const int* below = v + 1 < h ? index.ptr<int>(v + 1) : nullptr;
-    const float* p = f.p.ptr<float>(v);
-    const float* q = f.q.ptr<float>(v);
-    const float* q_above = v > 0 ? f.q.ptr<float>(v - 1) : nullptr;
-    const float* q_below = v + 1 < h ? f.q.ptr<float>(v + 1) : nullptr;
     for (int u = 0; u < w; ++u) {
       const int i = id[u];
       if (i < 0) continue;
       outer[i] = static_cast<int>(k);
-      // Each edge: f[b] - f[a] = g (forward difference, mean gradient).
-      double diag = 1e-9, r = 0;
+      double diag = 1e-9;
       auto edge = [&](int j) {
         inner[k] = j;
         value[k++] = -1.0;
         diag += 1;
       };
-      if (above && above[u] >= 0) edge(above[u]), r += 0.5 * (q_above[u] + q[u]);
-      if (u > 0 && id[u - 1] >= 0) edge(id[u - 1]), r += 0.5 * (p[u - 1] + p[u]);
+      if (above && above[u] >= 0) edge(above[u]);
+      if (u > 0 && id[u - 1] >= 0) edge(id[u - 1]);
       const int64_t self = k++;
-      if (u + 1 < w && id[u + 1] >= 0) edge(id[u + 1]), r -= 0.5 * (p[u] + p[u + 1]);
-      if (below && below[u] >= 0) edge(below[u]), r -= 0.5 * (q[u] + q_below[u]);
+      if (u + 1 < w && id[u + 1] >= 0) edge(id[u + 1]);
+      if (below && below[u] >= 0) edge(below[u]);
       inner[self] = i;
       value[self] = diag;
-      rhs[i] = r;
     }
   }
   outer[count] = static_cast<int>(k);
@@ -198,7 +215,10 @@ PoissonSystem BuildPoisson(const Field& f) {
 cv::Mat Poisson(const Field& f, const IntegrationOptions& o, int threads, DepthMap* out) {
   const int h = f.p.rows, w = f.p.cols;
   cv::Mat z = cv::Mat::zeros(h, w, CV_32F);
-  const PoissonSystem sys = BuildPoisson(f);
+  // The iterative solve needs no assembled matrix (it applies the operator
+  // from the index map).
+  const int valid = cv::countNonZero(f.valid);
+  const PoissonSystem sys = BuildPoisson(f, valid <= o.direct_solver_max_pixels);
   if (sys.count == 0) return z;
   Eigen::VectorXd x;
   if (sys.count <= o.direct_solver_max_pixels) {
@@ -207,8 +227,7 @@ cv::Mat Poisson(const Field& f, const IntegrationOptions& o, int threads, DepthM
     out->method = "poisson-ldlt";
   } else {
     internal::MultigridReport report;
-    x = internal::SolvePoissonMultigrid(sys.index, sys.a, sys.rhs, o.cg_tolerance, o.cg_max_iterations, threads,
-                                        &report);
+    x = internal::SolvePoissonMultigrid(sys.index, sys.rhs, o.cg_tolerance, o.cg_max_iterations, threads, &report);
     out->method = "poisson-multigrid-cg";
     out->iterations = report.iterations;
     out->residual = report.residual;

@@ -12,6 +12,91 @@
 #include "lumenrig/capture_io/parallel.h"
 
 namespace lumenrig::solvers::internal {
+class PoissonOperator;
+}  // namespace lumenrig::solvers::internal
+
+// Eigen's matrix-free interface (Eigen documentation, "Matrix-free solvers"):
+// the operator looks like a sparse matrix to ConjugateGradient.
+namespace Eigen::internal {
+template <>
+struct traits<lumenrig::solvers::internal::PoissonOperator> : public traits<Eigen::SparseMatrix<double>> {};
+}  // namespace Eigen::internal
+
+namespace lumenrig::solvers::internal {
+
+/// A = graph Laplacian of the 4-neighbour edges between the pixels of an
+/// index map, plus 1e-9 on the diagonal, applied without assembling it:
+/// (A x)_i = -x_above - x_left + (degree_i + 1e-9) x_i - x_right - x_below,
+/// summed in that order (the column order of the assembled matrix, so the
+/// products are those of Eigen's sparse product). Rows of the image are
+/// independent, so they run in fixed chunks on `threads`.
+class PoissonOperator : public Eigen::EigenBase<PoissonOperator> {
+ public:
+  using Scalar = double;
+  using RealScalar = double;
+  using StorageIndex = int;
+  enum { ColsAtCompileTime = Eigen::Dynamic, MaxColsAtCompileTime = Eigen::Dynamic, IsRowMajor = false };
+
+  PoissonOperator(const cv::Mat* index, Eigen::Index n, int threads) : index_(index), n_(n), threads_(threads) {}
+  Eigen::Index rows() const { return n_; }
+  Eigen::Index cols() const { return n_; }
+  template <typename Rhs>
+  Eigen::Product<PoissonOperator, Rhs, Eigen::AliasFreeProduct> operator*(const Eigen::MatrixBase<Rhs>& x) const {
+    return Eigen::Product<PoissonOperator, Rhs, Eigen::AliasFreeProduct>(*this, x.derived());
+  }
+
+  /// dst += alpha * A x.
+  void AddProduct(const double* x, double alpha, double* dst) const {
+    const cv::Mat& index = *index_;
+    const int h = index.rows, w = index.cols;
+    io::ParallelFor(0, h, 16, n_ < 32768 ? 1 : threads_, [&](int64_t b, int64_t e) {
+      for (int64_t v = b; v < e; ++v) {
+        const int* id = index.ptr<int>(static_cast<int>(v));
+        const int* above = v > 0 ? index.ptr<int>(static_cast<int>(v - 1)) : nullptr;
+        const int* below = v + 1 < h ? index.ptr<int>(static_cast<int>(v + 1)) : nullptr;
+        for (int u = 0; u < w; ++u) {
+          const int i = id[u];
+          if (i < 0) continue;
+          double sum = 0.0, degree = 1e-9;
+          if (above && above[u] >= 0) sum += -x[above[u]], degree += 1;
+          if (u > 0 && id[u - 1] >= 0) sum += -x[id[u - 1]], degree += 1;
+          const int right = u + 1 < w ? id[u + 1] : -1;
+          const int down = below ? below[u] : -1;
+          if (right >= 0) degree += 1;
+          if (down >= 0) degree += 1;
+          sum += degree * x[i];
+          if (right >= 0) sum += -x[right];
+          if (down >= 0) sum += -x[down];
+          dst[i] += alpha * sum;
+        }
+      }
+    });
+  }
+
+ private:
+  const cv::Mat* index_;
+  Eigen::Index n_;
+  int threads_;
+};
+
+}  // namespace lumenrig::solvers::internal
+
+namespace Eigen::internal {
+template <typename Rhs>
+struct generic_product_impl<lumenrig::solvers::internal::PoissonOperator, Rhs, SparseShape, DenseShape, GemvProduct>
+    : generic_product_impl_base<lumenrig::solvers::internal::PoissonOperator, Rhs,
+                                generic_product_impl<lumenrig::solvers::internal::PoissonOperator, Rhs>> {
+  using Scalar = typename Product<lumenrig::solvers::internal::PoissonOperator, Rhs>::Scalar;
+  template <typename Dest>
+  static void scaleAndAddTo(Dest& dst, const lumenrig::solvers::internal::PoissonOperator& lhs, const Rhs& rhs,
+                            const Scalar& alpha) {
+    const Eigen::Ref<const Eigen::VectorXd> x(rhs);  // no copy for a plain vector
+    lhs.AddProduct(x.data(), alpha, dst.data());
+  }
+};
+}  // namespace Eigen::internal
+
+namespace lumenrig::solvers::internal {
 namespace {
 
 /// One level of the hierarchy: a weighted graph Laplacian
@@ -207,10 +292,10 @@ void ProlongAdd(const Level& c, Level& f, int threads) {
 /// The hierarchy and its coarsest-level factorisation.
 class Hierarchy {
  public:
-  Hierarchy(const cv::Mat& index, const Eigen::SparseMatrix<double>& a, int threads) : threads_(threads) {
+  Hierarchy(const cv::Mat& index, int threads) : threads_(threads) {
     // Finest level: one unknown per pixel of `index`, red pixels first,
-    // each colour in row-major order; its edges are the off-diagonal
-    // entries of the system matrix (symmetric, so column k = row k).
+    // each colour in row-major order; its edges join 4-neighbour pixels of
+    // the index, in the order above, left, right, below (all weigh 1).
     Level fine;
     for (int colour = 0; colour < 2; ++colour)
       for (int v = 0; v < index.rows; ++v) {
@@ -222,19 +307,19 @@ class Hierarchy {
     to_level_.assign(fine.n, 0);
     for (int64_t k = 0; k < fine.n; ++k) to_level_[from_level_[k]] = static_cast<int>(k);
     fine.edge_begin.assign(fine.n + 1, 0);
-    fine.edge_to.reserve(a.nonZeros());
-    fine.edge_w.reserve(a.nonZeros());
-    bool unit = true;
+    fine.edge_to.reserve(static_cast<size_t>(fine.n) * 4);
     for (int64_t k = 0; k < fine.n; ++k) {
-      for (Eigen::SparseMatrix<double>::InnerIterator it(a, from_level_[k]); it; ++it) {
-        if (it.row() == from_level_[k]) continue;
-        fine.edge_to.push_back(to_level_[it.row()]);
-        fine.edge_w.push_back(static_cast<float>(-it.value()));
-        unit = unit && it.value() == -1.0;
-      }
+      const int v = fine.cell_v[k], u = fine.cell_u[k];
+      const int* id = index.ptr<int>(v);
+      auto edge = [&](int j) {
+        if (j >= 0) fine.edge_to.push_back(to_level_[j]);
+      };
+      if (v > 0) edge(index.ptr<int>(v - 1)[u]);
+      if (u > 0) edge(id[u - 1]);
+      if (u + 1 < index.cols) edge(id[u + 1]);
+      if (v + 1 < index.rows) edge(index.ptr<int>(v + 1)[u]);
       fine.edge_begin[k + 1] = static_cast<int64_t>(fine.edge_to.size());
     }
-    if (unit) std::vector<float>().swap(fine.edge_w);
     FinishLevel(&fine);
     levels_.push_back(std::move(fine));
     // Coarser levels down to a size the sparse Cholesky solves at once, or
@@ -334,11 +419,11 @@ class VCyclePreconditioner {
 
 }  // namespace
 
-Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::SparseMatrix<double>& a,
-                                      const Eigen::VectorXd& rhs, double tolerance, int max_iterations, int threads,
-                                      MultigridReport* report) {
-  Hierarchy hierarchy(index, a, threads);
-  Eigen::ConjugateGradient<Eigen::SparseMatrix<double>, Eigen::Lower | Eigen::Upper, VCyclePreconditioner> cg;
+Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::VectorXd& rhs, double tolerance,
+                                      int max_iterations, int threads, MultigridReport* report) {
+  Hierarchy hierarchy(index, threads);
+  const PoissonOperator a(&index, rhs.size(), threads);
+  Eigen::ConjugateGradient<PoissonOperator, Eigen::Lower | Eigen::Upper, VCyclePreconditioner> cg;
   cg.setTolerance(tolerance);
   cg.setMaxIterations(max_iterations);
   cg.compute(a);

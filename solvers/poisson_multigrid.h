@@ -18,21 +18,23 @@ struct MultigridReport {
 };
 
 /// Peak bytes of a solve with `unknowns` mask pixels in a view of `pixels`
-/// pixels (estimated from the data structures): per unknown, the system
-/// matrix (64), conjugate-gradient vectors (56) and the hierarchy (about 130
-/// over all levels); per pixel, the unknown and part index maps. The normals
-/// stage plans its budget with it.
+/// pixels (an upper bound from the data structures): per unknown, the
+/// right-hand side and conjugate-gradient vectors (56) and the hierarchy
+/// (about 130 over all levels, less since it works in single precision),
+/// with room to spare; per pixel, the unknown and part index maps. The
+/// normals stage plans its budget with it.
 inline int64_t MultigridPlanBytes(int64_t unknowns, int64_t pixels) { return unknowns * 260 + pixels * 8; }
 
-/// Solves a x = rhs where `a` is the graph Laplacian (plus a tiny ridge) of
-/// the 4-neighbour edges between the pixels of `index` (CV_32S: unknown of
-/// each pixel, -1 = none; unknowns numbered in row-major order), and rhs sums
-/// to zero over every connected part. Relative residual `tolerance`, at most
+/// Solves A x = rhs where A is the graph Laplacian plus a ridge of 1e-9 on
+/// the diagonal, over the 4-neighbour edges between the pixels of `index`
+/// (CV_32S: unknown of each pixel, -1 = none; unknowns numbered in row-major
+/// order), and rhs sums to zero over every connected part. A is applied from
+/// the index map (never assembled). Relative residual `tolerance`, at most
 /// `max_iterations`. The result has zero mean over each connected part, as
-/// the ridge gives the exact solution. `threads` (0 = all) runs the V-cycle's
-/// grid sweeps; the result does not depend on it.
-Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::SparseMatrix<double>& a,
-                                      const Eigen::VectorXd& rhs, double tolerance, int max_iterations, int threads,
-                                      MultigridReport* report);
+/// the ridge gives the exact solution. `threads` (0 = all) runs the operator
+/// and the V-cycle's grid sweeps in fixed chunks; the result does not depend
+/// on it.
+Eigen::VectorXd SolvePoissonMultigrid(const cv::Mat& index, const Eigen::VectorXd& rhs, double tolerance,
+                                      int max_iterations, int threads, MultigridReport* report);
 
 }  // namespace lumenrig::solvers::internal
