@@ -30,6 +30,13 @@ constexpr int kSubTile = 32;           // pixels processed together by the per-p
 #if defined(__GNUC__) && !defined(__clang__)
 #pragma GCC diagnostic ignored "-Wpsabi"
 #endif
+// LUMENRIG_SIMD_CLONES=OFF (CMake) builds the baseline version alone, so the
+// path an older CPU takes can be tested on any machine.
+#if LUMENRIG_SIMD_CLONES_ON && defined(__x86_64__) && (defined(__GNUC__) || defined(__clang__))
+#define LUMENRIG_SIMD_CLONES __attribute__((target_clones("avx2", "default")))
+#else
+#define LUMENRIG_SIMD_CLONES
+#endif
 constexpr int kLanes = 8;
 using Lanes = float __attribute__((vector_size(4 * kLanes)));
 using LaneMask = int32_t __attribute__((vector_size(4 * kLanes)));  // comparison result: -1 or 0 per lane
@@ -152,9 +159,8 @@ io::Expected<PsSolver> PsSolver::Create(const BlockLights& lights, const PsOptio
 namespace {
 /// Column sums of squares, sums and lit counts of an n x cols block
 /// (contiguous rows, vectorised), for AVX2 and the baseline (same bits).
-__attribute__((target_clones("avx2", "default"))) void ColumnSums(const float* data, int64_t stride, int n,
-                                                                  int64_t cols, float floor, float* energy, float* sum,
-                                                                  float* lit) {
+LUMENRIG_SIMD_CLONES void ColumnSums(const float* data, int64_t stride, int n, int64_t cols, float floor, float* energy,
+                                     float* sum, float* lit) {
   std::fill(energy, energy + cols, 0.0f);
   std::fill(sum, sum + cols, 0.0f);
   std::fill(lit, lit + cols, 0.0f);
@@ -613,16 +619,12 @@ namespace {
 // (GCC/Clang function multi-versioning; the loader picks one per CPU). AVX2
 // brings no FMA, so both versions round every operation alike and give the
 // same bits.
-__attribute__((target_clones("avx2", "default"))) void SolvePerPixelFar(const PsOptions& options,
-                                                                        const BlockLights& lights, const BlockInput& in,
-                                                                        const BlockOutputs& out,
-                                                                        std::vector<float>* scratch) {
+LUMENRIG_SIMD_CLONES void SolvePerPixelFar(const PsOptions& options, const BlockLights& lights, const BlockInput& in,
+                                           const BlockOutputs& out, std::vector<float>* scratch) {
   SolvePerPixelImpl<false>(options, lights, in, out, scratch);
 }
-__attribute__((target_clones("avx2", "default"))) void SolvePerPixelNear(const PsOptions& options,
-                                                                         const BlockLights& lights,
-                                                                         const BlockInput& in, const BlockOutputs& out,
-                                                                         std::vector<float>* scratch) {
+LUMENRIG_SIMD_CLONES void SolvePerPixelNear(const PsOptions& options, const BlockLights& lights, const BlockInput& in,
+                                            const BlockOutputs& out, std::vector<float>* scratch) {
   SolvePerPixelImpl<true>(options, lights, in, out, scratch);
 }
 }  // namespace
@@ -646,9 +648,8 @@ inline int32_t MagnitudeBits(float v) {
 }  // namespace
 
 // Built for AVX2 and the baseline, like the per-pixel path (same bits).
-__attribute__((target_clones("avx2", "default"))) float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark,
-                                                                       const Eigen::Vector3d& intensity,
-                                                                       float black_level) {
+LUMENRIG_SIMD_CLONES float NormalizeFrame(cv::Mat* frame, const cv::Mat& dark, const Eigen::Vector3d& intensity,
+                                          float black_level) {
   const int c = frame->channels();
   float scale[3];
   if (c == 3) {
