@@ -15,8 +15,23 @@ int ResolveThreads(int requested) {
   return std::max(1, tbb::this_task_arena::max_concurrency());
 }
 
+// Whether work capped at `n` threads can run in the calling thread's arena:
+// it has no more slots than `n`. A nested task_arena is then not only
+// unneeded but harmful: the threads of the outer arena (say, the main thread
+// waiting for a flow graph while a worker runs a node body) cannot enter it,
+// and under a global_control of 2 threads the nested arena would run on its
+// creator alone.
+static bool CurrentArenaFits(int n) { return tbb::this_task_arena::max_concurrency() <= n; }
+
 void RunCapped(int threads, const std::function<void()>& fn) {
-  tbb::task_arena arena(ResolveThreads(threads));
+  const int n = ResolveThreads(threads);
+  if (CurrentArenaFits(n)) {
+    // Isolated: while fn waits for its own tasks, this thread runs only
+    // those, never an unrelated task of the outer arena.
+    tbb::this_task_arena::isolate(fn);
+    return;
+  }
+  tbb::task_arena arena(n);
   arena.execute(fn);
 }
 
@@ -36,12 +51,15 @@ void ParallelFor(int64_t begin, int64_t end, int64_t grain, int threads,
     body(tbb::blocked_range<int64_t>(0, chunks));
     return;
   }
+  // simple_partitioner with grain 1: one task per fixed chunk, so chunk
+  // boundaries never depend on the scheduler or the thread count.
+  auto run = [&] { tbb::parallel_for(tbb::blocked_range<int64_t>(0, chunks, 1), body, tbb::simple_partitioner()); };
+  if (CurrentArenaFits(n)) {
+    tbb::this_task_arena::isolate(run);
+    return;
+  }
   tbb::task_arena arena(n);
-  arena.execute([&] {
-    // simple_partitioner with grain 1: one task per fixed chunk, so chunk
-    // boundaries never depend on the scheduler or the thread count.
-    tbb::parallel_for(tbb::blocked_range<int64_t>(0, chunks, 1), body, tbb::simple_partitioner());
-  });
+  arena.execute(run);
 }
 
 int CurrentThreadIndex() {
