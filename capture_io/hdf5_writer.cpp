@@ -7,16 +7,20 @@
 #include <fcntl.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 #include <map>
 #include <mutex>
 #include <numeric>
 
 #include <hdf5.h>
+#include <zlib.h>
 #include <opencv2/core.hpp>
 
 #include "lumenrig/capture_io/atomic_file.h"
+#include "lumenrig/capture_io/parallel.h"
 
 namespace fs = std::filesystem;
 
@@ -156,7 +160,11 @@ struct H5Writer::Impl {
   std::map<std::string, Dataset> datasets;
   bool finalized = false;
 
+  // Every call goes through here: a writer may be used from another thread
+  // than the one that created it (a TBB pipeline's serial stage), and that
+  // thread must be silenced too.
   Status CheckOpen() const {
+    internal::SilenceHdf5();
     if (finalized || !file.valid()) return Status::Internal(path + ": HDF5 writer already finalized");
     return Status::Ok();
   }
@@ -415,15 +423,64 @@ Status H5Writer::WriteImage(const std::string& name, const cv::Mat& image, H5Typ
          H5Dclose);
   if (!id.valid()) return H5Fail(path, "cannot create dataset " + name);
   const cv::Mat src = image.isContinuous() ? image : image.clone();
-  herr_t rc;
-  if (type == H5Type::kFloat16) {
-    cv::Mat halves;
-    src.convertTo(halves, CV_MAKETYPE(CV_16F, src.channels()));
-    rc = H5Dwrite(id.get(), file_type.get(), H5S_ALL, H5S_ALL, H5P_DEFAULT, halves.data);
-  } else {
-    rc = H5Dwrite(id.get(), H5T_NATIVE_FLOAT, H5S_ALL, H5S_ALL, H5P_DEFAULT, src.data);
+  if (gzip_level <= 0) {
+    herr_t rc;
+    if (type == H5Type::kFloat16) {
+      cv::Mat halves;
+      src.convertTo(halves, CV_MAKETYPE(CV_16F, src.channels()));
+      rc = H5Dwrite(id.get(), file_type.get(), H5S_ALL, H5S_ALL, H5P_DEFAULT, halves.data);
+    } else {
+      rc = H5Dwrite(id.get(), H5T_NATIVE_FLOAT, H5S_ALL, H5S_ALL, H5P_DEFAULT, src.data);
+    }
+    if (rc < 0) return H5Fail(path, "cannot write dataset " + name);
+    return Status::Ok();
   }
-  if (rc < 0) return H5Fail(path, "cannot write dataset " + name);
+  // HDF5 1.10 runs a dataset's filters on one thread, chunk after chunk. Here
+  // every chunk is converted, shuffled and deflated on all threads, exactly
+  // as the dataset's shuffle and deflate filters would (H5Z_filter_shuffle:
+  // byte k of every element together; H5Z_filter_deflate: zlib compress2 at
+  // the dataset's level), and stored with H5Dwrite_chunk, so any HDF5 reader
+  // decodes the dataset as usual. Edge chunks are padded with the fill value
+  // 0, as HDF5 pads them.
+  const size_t elem = type == H5Type::kFloat16 ? 2 : 4;
+  const size_t row_values = static_cast<size_t>(src.cols) * static_cast<size_t>(src.channels());
+  const size_t chunk_rows = static_cast<size_t>(chunk[0]);
+  const size_t chunk_bytes = chunk_rows * row_values * elem;
+  const int64_t n_chunks = (src.rows + static_cast<int64_t>(chunk_rows) - 1) / static_cast<int64_t>(chunk_rows);
+  std::vector<std::vector<unsigned char>> packed(static_cast<size_t>(n_chunks));
+  std::vector<int> zlib_status(static_cast<size_t>(n_chunks), Z_OK);
+  ParallelFor(0, n_chunks, 1, /*threads=*/0, [&](int64_t b, int64_t e) {
+    std::vector<unsigned char> raw(chunk_bytes), shuffled(chunk_bytes);
+    for (int64_t k = b; k < e; ++k) {
+      const int y0 = static_cast<int>(k * static_cast<int64_t>(chunk_rows));
+      const int y1 = std::min(src.rows, y0 + static_cast<int>(chunk_rows));
+      std::fill(raw.begin(), raw.end(), 0);
+      cv::Mat rows = src.rowRange(y0, y1);
+      if (type == H5Type::kFloat16) {
+        cv::Mat dst(y1 - y0, src.cols, CV_MAKETYPE(CV_16F, src.channels()), raw.data());
+        rows.convertTo(dst, dst.type());
+      } else {
+        std::memcpy(raw.data(), rows.data, static_cast<size_t>(y1 - y0) * row_values * elem);
+      }
+      const size_t n = chunk_bytes / elem;
+      for (size_t j = 0; j < elem; ++j)
+        for (size_t i = 0; i < n; ++i) shuffled[j * n + i] = raw[i * elem + j];
+      std::vector<unsigned char>& out = packed[static_cast<size_t>(k)];
+      uLongf out_bytes = compressBound(static_cast<uLong>(chunk_bytes));
+      out.resize(out_bytes);
+      zlib_status[static_cast<size_t>(k)] =
+          compress2(out.data(), &out_bytes, shuffled.data(), static_cast<uLong>(chunk_bytes), std::min(gzip_level, 9));
+      out.resize(out_bytes);
+    }
+  });
+  for (int64_t k = 0; k < n_chunks; ++k) {
+    if (zlib_status[static_cast<size_t>(k)] != Z_OK)
+      return Status::Internal(fmt::format("{}: zlib failed to compress a chunk of {}", path, name));
+    const hsize_t offset[3] = {static_cast<hsize_t>(k) * chunk[0], 0, 0};
+    const std::vector<unsigned char>& bytes = packed[static_cast<size_t>(k)];
+    if (H5Dwrite_chunk(id.get(), H5P_DEFAULT, /*filters=*/0, offset, bytes.size(), bytes.data()) < 0)
+      return H5Fail(path, "cannot write dataset " + name);
+  }
   return Status::Ok();
 }
 

@@ -300,8 +300,19 @@ assert np.array_equal(n[...], ref)
 d = f['/cameras/cam00/depth']
 assert d.dtype == np.float32 and d.shape == (210, 9, 1), (d.dtype, d.shape)
 assert np.array_equal(d[...].reshape(-1), np.fromfile(sys.argv[2], dtype=np.float32))
+# WriteImage deflates the chunks itself, on all threads: every stored chunk
+# (the padded edge chunk too) must hold the bytes HDF5's own shuffle + deflate
+# filters store for the same data (reference: h5py writing through HDF5).
+g = h5py.File(sys.argv[3], 'w')
+for name, src in (('normals', n), ('depth', d)):
+    ref = g.create_dataset(name, data=src[...], chunks=src.chunks, shuffle=True, compression='gzip',
+                           compression_opts=4)
+    for row in range(0, src.shape[0], src.chunks[0]):
+        ours = src.id.read_direct_chunk((row, 0, 0))
+        theirs = ref.id.read_direct_chunk((row, 0, 0))
+        assert ours == theirs, (name, row, ours[0], theirs[0], len(ours[1]), len(theirs[1]))
 print("ok")
 )PY";
-  auto r = RunPython(dir, script, (dir / "a.h5") + " " + (dir / "img.f32"));
+  auto r = RunPython(dir, script, (dir / "a.h5") + " " + (dir / "img.f32") + " " + (dir / "ref.h5"));
   EXPECT_EQ(r.exit_code, 0) << r.out << r.err;
 }
