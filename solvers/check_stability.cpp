@@ -15,9 +15,17 @@ namespace {
 
 /// Weighted Lucas-Kanade (Gauss-Newton on a pure translation) from `d`:
 /// moved(x + d) ~ reference(x). Returns the weighted mean squared residual.
+/// OpenCV's bilinear warp places samples on a 1/32-pixel grid
+/// (INTER_BITS = 5), so the residual is flat between grid steps and the
+/// iteration ends in a cycle of steps of about that size rather than below
+/// 1e-3: it stops after two steps in a row that do not lower the residual
+/// and keeps the best shift seen (it ran all 30 iterations at every call
+/// before).
 double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, cv::Point2d* d) {
   cv::Mat warped, gx, gy;
   double err = std::numeric_limits<double>::infinity();
+  cv::Point2d best = *d;
+  int stalls = 0;  // iterations in a row without a lower residual
   const double wsum = std::max(1e-12, cv::sum(win)[0]);
   for (int iter = 0; iter < 30; ++iter) {
     const cv::Mat m = (cv::Mat_<double>(2, 3) << 1, 0, d->x, 0, 1, d->y);
@@ -45,7 +53,14 @@ double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, c
       }
       e += re, a += ra, b += rb, c += rc, u += ru, v += rv;
     }
-    err = e / wsum;
+    const bool improved = e / wsum < err;
+    if (improved) {
+      err = e / wsum;
+      best = *d;
+      stalls = 0;
+    } else if (++stalls >= 2) {
+      break;
+    }
     const double det = a * c - b * b;
     if (!(det > 1e-12 * (a * c + 1e-30))) break;
     double sx = -(c * u - b * v) / det, sy = -(a * v - b * u) / det;
@@ -53,8 +68,9 @@ double RefineShift(const cv::Mat& ref, const cv::Mat& mov, const cv::Mat& win, c
     if (step > 1.0) sx /= step, sy /= step;  // trust region: at most a pixel per step
     d->x += sx;
     d->y += sy;
-    if (step < 1e-3) break;
+    if (step < 1e-3 && improved) return err;  // converged from the best shift
   }
+  *d = best;
   return err;
 }
 
