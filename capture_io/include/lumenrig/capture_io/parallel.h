@@ -1,7 +1,9 @@
 #pragma once
 /// \file parallel.h
 /// The one parallel idiom of lumenrig (STYLE.md rule 5): a band/tile
-/// ParallelFor on TBB inside a task_arena capped at `threads`. Chunks are fixed
+/// ParallelFor on TBB capped at `threads`: in the calling thread's arena
+/// (isolated) when it is no wider than the cap, otherwise in a task_arena of
+/// `threads` slots (see DEVELOPERS.md, "one parallel idiom"). Chunks are fixed
 /// by (begin, end, grain) alone, never by the scheduler, so any per-chunk
 /// computation is bit-identical for any thread count. Random seeds must come
 /// from sample and pixel indices (see DeriveSeed), never from the thread.
@@ -24,7 +26,8 @@ void ParallelFor(int64_t begin, int64_t end, int64_t grain, int threads,
 /// [0, ResolveThreads(threads)); use it only to pick per-thread scratch.
 int CurrentThreadIndex();
 
-/// Runs fn() inside a task_arena capped at `threads`, so that nested TBB
+/// Runs fn() capped at `threads` (the calling arena, isolated, when it is no
+/// wider; otherwise a task_arena of that many slots), so that nested TBB
 /// algorithms (parallel_for, Eigen is not affected) respect the cap.
 void RunCapped(int threads, const std::function<void()>& fn);
 
