@@ -454,14 +454,15 @@ Status H5Writer::WriteImage(const std::string& name, const cv::Mat& image, H5Typ
     for (int64_t k = b; k < e; ++k) {
       const int y0 = static_cast<int>(k * static_cast<int64_t>(chunk_rows));
       const int y1 = std::min(src.rows, y0 + static_cast<int>(chunk_rows));
-      std::fill(raw.begin(), raw.end(), 0);
+      const size_t used = static_cast<size_t>(y1 - y0) * row_values * elem;
       cv::Mat rows = src.rowRange(y0, y1);
       if (type == H5Type::kFloat16) {
         cv::Mat dst(y1 - y0, src.cols, CV_MAKETYPE(CV_16F, src.channels()), raw.data());
         rows.convertTo(dst, dst.type());
       } else {
-        std::memcpy(raw.data(), rows.data, static_cast<size_t>(y1 - y0) * row_values * elem);
+        std::memcpy(raw.data(), rows.data, used);
       }
+      std::fill(raw.begin() + static_cast<std::ptrdiff_t>(used), raw.end(), 0);  // edge chunk padding
       const size_t n = chunk_bytes / elem;
       for (size_t j = 0; j < elem; ++j)
         for (size_t i = 0; i < n; ++i) shuffled[j * n + i] = raw[i * elem + j];

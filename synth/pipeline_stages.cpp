@@ -10,7 +10,6 @@
 #include <map>
 #include <memory>
 #include <mutex>
-#include <optional>
 
 #include <tbb/parallel_pipeline.h>
 #include <tbb/task_group.h>
