@@ -232,7 +232,11 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
     }
     for (const auto& f : report.outputs) fmt::print("output: {}\n", f);
     const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-    fmt::print("lumenrig run: {} unit(s) run, {}\n", to_run, TimeAndMemoryLine(wall));
+    int ran = 0;
+    for (const auto& st : report.stages) ran += st.units_run;
+    // Units planned but not run: stopped by a QA FAIL or an error.
+    const std::string not_run = ran < to_run ? fmt::format(" ({} planned unit(s) not run)", to_run - ran) : "";
+    fmt::print("lumenrig run: {} unit(s) run{}, {}\n", ran, not_run, TimeAndMemoryLine(wall));
     if (!s.ok()) return ReportError("run", s);
     return 0;
   }

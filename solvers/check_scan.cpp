@@ -542,6 +542,24 @@ io::Status ScanBegin(const io::Session& session, const CheckOptions& options, Ch
       cv::Mat plate = read_aux(cam.clean_plate, "clean plate");
       cv::Mat backlit = read_aux(cam.backlit, "backlit");
       cv::Mat lit = read_aux(cam.lit, "lit");
+      // Matte pairs are decoded in full only by the matte stage. Here each
+      // file is opened and its last line block decoded (io::ProbeImage), so
+      // a missing, cut-short or wrongly sized one fails the check, at the
+      // cost of one block per file.
+      for (size_t k = 0; k < cam.matte_pairs.size(); ++k) {
+        for (const auto& [path, what] : {std::pair<std::string, const char*>{cam.matte_pairs[k].plate, "plate"},
+                                         std::pair<std::string, const char*>{cam.matte_pairs[k].frame, "frame"}}) {
+          if (path.empty()) continue;
+          auto info = io::ProbeImage(path);
+          if (!info.ok()) {
+            fail(path, fmt::format("camera {}: matte pair {} {} unreadable: {}", cam.id, k, what,
+                                   info.status().message()));
+          } else if (info->width != ctx.width || info->height != ctx.height) {
+            fail(path, fmt::format("camera {}: matte pair {} {} is {}x{}, the OLAT frames are {}x{}", cam.id, k,
+                                   what, info->width, info->height, ctx.width, ctx.height));
+          }
+        }
+      }
       cv::Mat plate_lum = plate.empty() ? cv::Mat() : Luminance(plate);
       plate.release();
       if (ctx.mask.empty() && !plate_lum.empty() && !lit.empty()) {

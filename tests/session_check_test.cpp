@@ -230,6 +230,33 @@ TEST(SessionCheck, FileListedButAbsentIsNamed) {
   EXPECT_TRUE(MentionsAll(*l, {"cam00", fmt::format("light {}:", cut_light)})) << Describe(r);
 }
 
+TEST(SessionCheck, TruncatedOrAbsentMatteFilesAreNamed) {
+  synth::SimOptions sim = Small(5);
+  test::TempDir tmp;
+  ASSERT_TRUE(synth::SimulateSession(sim, tmp / "session").ok());
+  io::LoadOptions load;
+  load.require_files = false;
+  auto session = io::LoadSession(tmp / "session", load);
+  ASSERT_TRUE(session.ok());
+  ASSERT_GE(session->cameras[0].matte_pairs.size(), 2u);
+  {
+    CheckResult clean;
+    ASSERT_TRUE(CheckSession(*session, {}, &clean, 2).ok());
+    EXPECT_NE(Line(clean, "completeness")->verdict, Verdict::kFail) << Describe(clean);
+  }
+  const std::string cut = session->cameras[0].matte_pairs[1].frame;
+  fs::resize_file(cut, fs::file_size(cut) * 3 / 4);
+  const std::string gone = session->cameras[0].matte_pairs[0].plate;
+  fs::remove(gone);
+  CheckResult r;
+  ASSERT_TRUE(CheckSession(*session, {}, &r, 2).ok());
+  const CheckLine* l = Line(r, "completeness");
+  ASSERT_NE(l, nullptr);
+  EXPECT_EQ(l->verdict, Verdict::kFail);
+  EXPECT_TRUE(MentionsAll(*l, {"cam00", "matte pair 1 frame unreadable", cut})) << Describe(r);
+  EXPECT_TRUE(MentionsAll(*l, {"cam00", "matte pair 0 plate unreadable", gone})) << Describe(r);
+}
+
 TEST(SessionCheck, SubjectMotionOfThreePixelsIsNamed) {
   synth::SimOptions sim = Small(6);
   sim.faults.motion_px = 3.0;
