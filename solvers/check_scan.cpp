@@ -552,11 +552,11 @@ io::Status ScanBegin(const io::Session& session, const CheckOptions& options, Ch
           if (path.empty()) continue;
           auto info = io::ProbeImage(path);
           if (!info.ok()) {
-            fail(path, fmt::format("camera {}: matte pair {} {} unreadable: {}", cam.id, k, what,
-                                   info.status().message()));
+            fail(path,
+                 fmt::format("camera {}: matte pair {} {} unreadable: {}", cam.id, k, what, info.status().message()));
           } else if (info->width != ctx.width || info->height != ctx.height) {
-            fail(path, fmt::format("camera {}: matte pair {} {} is {}x{}, the OLAT frames are {}x{}", cam.id, k,
-                                   what, info->width, info->height, ctx.width, ctx.height));
+            fail(path, fmt::format("camera {}: matte pair {} {} is {}x{}, the OLAT frames are {}x{}", cam.id, k, what,
+                                   info->width, info->height, ctx.width, ctx.height));
           }
         }
       }
