@@ -248,7 +248,8 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
       }
       if (!user_trimap.empty()) ApplyTrimap(user_trimap, &result.alpha);
       if (!lit.empty()) {
-        LUMENRIG_RETURN_IF_ERROR(EstimateForeground(lit, plate, result.alpha, options.foreground, &result.foreground));
+        LUMENRIG_RETURN_IF_ERROR(
+            EstimateForeground(lit, plate, result.alpha, options.foreground, &result.foreground, threads));
       } else {
         result.notes.push_back(loader.Key("lit") + " absent: foreground.exr not written");
       }
@@ -278,7 +279,8 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
                           : fmt::format("conjugate gradient stopped at relative residual {:.2g} after {} iterations",
                                         cstats.relative_residual, cstats.iterations));
       }
-      LUMENRIG_RETURN_IF_ERROR(EstimateForeground(lit, plate, result.alpha, options.foreground, &result.foreground));
+      LUMENRIG_RETURN_IF_ERROR(
+          EstimateForeground(lit, plate, result.alpha, options.foreground, &result.foreground, threads));
       result.confidence = DifferenceConfidence(result.trimap, result.foreground, plate, tstats.difference_sigma);
     }
   }

@@ -67,24 +67,35 @@ io::Status CheckRgb(const cv::Mat& m, const char* what, cv::Size size) {
 
 }  // namespace
 
-double EstimateDifferenceNoise(const cv::Mat& difference) {
-  CV_Assert(difference.depth() == CV_32F);
-  const int h = difference.rows, w = difference.cols, c = difference.channels();
+namespace {
+
+// Immerkaer's estimate over d(y, x) = a - b (or a alone when b is empty).
+double DifferenceNoise(const cv::Mat& a, const cv::Mat& b) {
+  CV_Assert(a.depth() == CV_32F && (b.empty() || (b.type() == a.type() && b.size() == a.size())));
+  const int h = a.rows, w = a.cols, c = a.channels();
   if (h < 3 || w < 3) return 0.0;
   const int64_t interior = static_cast<int64_t>(h - 2) * (w - 2);
   const int stride = std::max<int>(1, static_cast<int>(std::ceil(std::sqrt(static_cast<double>(interior) / 1e6))));
   std::vector<float> responses;
   responses.reserve(static_cast<size_t>(interior / (int64_t(stride) * stride) + 1) * c);
+  const bool pair = !b.empty();
   for (int y = 1; y + 1 < h; y += stride) {
-    const float* r0 = difference.ptr<float>(y - 1);
-    const float* r1 = difference.ptr<float>(y);
-    const float* r2 = difference.ptr<float>(y + 1);
+    const float* a0 = a.ptr<float>(y - 1);
+    const float* a1 = a.ptr<float>(y);
+    const float* a2 = a.ptr<float>(y + 1);
+    const float* b0 = pair ? b.ptr<float>(y - 1) : nullptr;
+    const float* b1 = pair ? b.ptr<float>(y) : nullptr;
+    const float* b2 = pair ? b.ptr<float>(y + 1) : nullptr;
     for (int x = 1; x + 1 < w; x += stride) {
       for (int ch = 0; ch < c; ++ch) {
-        auto at = [&](const float* row, int xx) { return row[xx * c + ch]; };
+        // The float difference, rounded as a - b stored in an image would be.
+        auto at = [&](const float* ra, const float* rb, int xx) -> float {
+          return pair ? ra[xx * c + ch] - rb[xx * c + ch] : ra[xx * c + ch];
+        };
         // Immerkaer 1996 operator [1 -2 1; -2 4 -2; 1 -2 1] (squared weights sum to 36).
-        const float r = at(r0, x - 1) - 2 * at(r0, x) + at(r0, x + 1) - 2 * at(r1, x - 1) + 4 * at(r1, x) -
-                        2 * at(r1, x + 1) + at(r2, x - 1) - 2 * at(r2, x) + at(r2, x + 1);
+        const float r = at(a0, b0, x - 1) - 2 * at(a0, b0, x) + at(a0, b0, x + 1) - 2 * at(a1, b1, x - 1) +
+                        4 * at(a1, b1, x) - 2 * at(a1, b1, x + 1) + at(a2, b2, x - 1) - 2 * at(a2, b2, x) +
+                        at(a2, b2, x + 1);
         responses.push_back(std::fabs(r));
       }
     }
@@ -95,6 +106,12 @@ double EstimateDifferenceNoise(const cv::Mat& difference) {
   // median |N(0, 36 sigma^2)| = 0.67449 * 6 sigma.
   return static_cast<double>(*mid) / (0.67449 * 6.0);
 }
+
+}  // namespace
+
+double EstimateDifferenceNoise(const cv::Mat& difference) { return DifferenceNoise(difference, cv::Mat()); }
+
+double EstimateDifferenceNoise(const cv::Mat& a, const cv::Mat& b) { return DifferenceNoise(a, b); }
 
 io::Status BacklitMatte(const cv::Mat& plate, const cv::Mat& backlit, const cv::Mat& dark,
                         const BacklitOptions& options, cv::Mat* alpha, cv::Mat* confidence, BacklitStats* stats,
@@ -223,7 +240,7 @@ io::Status TriangulationMatte(const std::vector<cv::Mat>& plates, const std::vec
   }
   const int n = static_cast<int>(plates.size());
   double sigma = options.noise_sigma;
-  if (sigma == 0.0) sigma = EstimateDifferenceNoise(frames[0] - plates[0]) / std::sqrt(2.0);
+  if (sigma == 0.0) sigma = EstimateDifferenceNoise(frames[0], plates[0]) / std::sqrt(2.0);
   if (noise_sigma_used != nullptr) *noise_sigma_used = sigma;
 
   const int h = size.height, w = size.width;
@@ -298,45 +315,57 @@ io::Status TriangulationMatte(const std::vector<cv::Mat>& plates, const std::vec
     ForegroundOptions fo;
     fo.lambda = options.colour_lambda;
     fo.blur_px = options.colour_blur_px;
-    UnpremultiplyForeground(premult, *alpha, fo, foreground);
+    UnpremultiplyForeground(premult, *alpha, fo, foreground, threads);
   }
   return io::Status::Ok();
 }
 
 void UnpremultiplyForeground(const cv::Mat& premultiplied, const cv::Mat& alpha, const ForegroundOptions& options,
-                             cv::Mat* foreground) {
+                             cv::Mat* foreground, int threads) {
   CV_Assert(premultiplied.type() == CV_32FC3 && alpha.type() == CV_32FC1 && premultiplied.size() == alpha.size());
   // Local colour F^ = G*(a Fp) / G*(a^2): the alpha^2-weighted mean of F.
-  cv::Mat a3;
-  cv::merge(std::vector<cv::Mat>{alpha, alpha, alpha}, a3);
-  cv::Mat num = premultiplied.mul(a3);
-  cv::Mat den = alpha.mul(alpha);
+  const int h = alpha.rows, w = alpha.cols;
+  cv::Mat num(h, w, CV_32FC3), den(h, w, CV_32FC1);
+  io::ParallelFor(0, h, kRowGrain, threads, [&](int64_t y0, int64_t y1) {
+    for (int y = static_cast<int>(y0); y < y1; ++y) {
+      const float* fp = premultiplied.ptr<float>(y);
+      const float* a = alpha.ptr<float>(y);
+      float* nr = num.ptr<float>(y);
+      float* dr = den.ptr<float>(y);
+      for (int x = 0; x < w; ++x) {
+        for (int c = 0; c < 3; ++c) nr[3 * x + c] = fp[3 * x + c] * a[x];
+        dr[x] = a[x] * a[x];
+      }
+    }
+  });
   cv::GaussianBlur(num, num, cv::Size(), options.blur_px);
   cv::GaussianBlur(den, den, cv::Size(), options.blur_px);
   foreground->create(alpha.size(), CV_32FC3);
   const double lambda = options.lambda;
-  for (int y = 0; y < alpha.rows; ++y) {
-    const float* fp = premultiplied.ptr<float>(y);
-    const float* a = alpha.ptr<float>(y);
-    const float* nr = num.ptr<float>(y);
-    const float* dr = den.ptr<float>(y);
-    float* out = foreground->ptr<float>(y);
-    for (int x = 0; x < alpha.cols; ++x) {
-      for (int c = 0; c < 3; ++c) {
-        if (!(a[x] > 0.0f)) {
-          out[3 * x + c] = 0.0f;
-          continue;
+  io::ParallelFor(0, h, kRowGrain, threads, [&](int64_t y0, int64_t y1) {
+    for (int y = static_cast<int>(y0); y < y1; ++y) {
+      const float* fp = premultiplied.ptr<float>(y);
+      const float* a = alpha.ptr<float>(y);
+      const float* nr = num.ptr<float>(y);
+      const float* dr = den.ptr<float>(y);
+      float* out = foreground->ptr<float>(y);
+      for (int x = 0; x < w; ++x) {
+        for (int c = 0; c < 3; ++c) {
+          if (!(a[x] > 0.0f)) {
+            out[3 * x + c] = 0.0f;
+            continue;
+          }
+          const double local = dr[x] > 1e-6f ? nr[3 * x + c] / dr[x] : 0.0;
+          const double f = (a[x] * double(fp[3 * x + c]) + lambda * local) / (double(a[x]) * a[x] + lambda);
+          out[3 * x + c] = static_cast<float>(std::max(0.0, f));
         }
-        const double local = dr[x] > 1e-6f ? nr[3 * x + c] / dr[x] : 0.0;
-        const double f = (a[x] * double(fp[3 * x + c]) + lambda * local) / (double(a[x]) * a[x] + lambda);
-        out[3 * x + c] = static_cast<float>(std::max(0.0, f));
       }
     }
-  }
+  });
 }
 
 io::Status EstimateForeground(const cv::Mat& frame, const cv::Mat& plate, const cv::Mat& alpha,
-                              const ForegroundOptions& options, cv::Mat* foreground) {
+                              const ForegroundOptions& options, cv::Mat* foreground, int threads) {
   if (!(options.lambda > 0) || !(options.blur_px > 0)) {
     return io::Status::BadInput("foreground options: lambda and blur_px must be positive");
   }
@@ -349,7 +378,7 @@ io::Status EstimateForeground(const cv::Mat& frame, const cv::Mat& plate, const 
   cv::Mat om3;
   cv::merge(std::vector<cv::Mat>{one_minus, one_minus, one_minus}, om3);
   cv::Mat premult = frame - plate.mul(om3);
-  UnpremultiplyForeground(premult, alpha, options, foreground);
+  UnpremultiplyForeground(premult, alpha, options, foreground, threads);
   return io::Status::Ok();
 }
 

@@ -36,6 +36,15 @@ TEST(MattingNoise, ImmerkaerEstimateRecoversGaussianSigma) {
   textured(cv::Rect(0, 0, 60, 60)) += s.plate2(cv::Rect(0, 0, 60, 60));
   EXPECT_NEAR(EstimateDifferenceNoise(diff), sigma, 0.05 * sigma);      // 5%: common practice
   EXPECT_NEAR(EstimateDifferenceNoise(textured), sigma, 0.15 * sigma);  // 15%: common practice
+  // The two-image form never forms a - b but must round exactly as it; on a
+  // 1200x1000 image it also samples with a stride (> 1e6 pixels).
+  const cv::Mat noisy = AddNoise(s.plate1, sigma, 8);
+  EXPECT_EQ(EstimateDifferenceNoise(noisy, s.plate1), EstimateDifferenceNoise(noisy - s.plate1));
+  cv::Mat big_a(1000, 1200, CV_32FC3), big_b(1000, 1200, CV_32FC3);
+  cv::randn(big_a, 0.5, 0.02);
+  cv::randn(big_b, 0.5, 0.02);
+  EXPECT_EQ(EstimateDifferenceNoise(big_a, big_b), EstimateDifferenceNoise(big_a - big_b));
+  EXPECT_NEAR(EstimateDifferenceNoise(big_a, big_b), 0.02 * std::sqrt(2.0), 0.05 * 0.02 * std::sqrt(2.0));
 }
 
 // -------------------------------------------------------- triangulation --

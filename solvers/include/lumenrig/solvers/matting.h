@@ -34,6 +34,9 @@ inline constexpr uint8_t kTrimapForeground = 255;
 /// 6 sigma for Gaussian noise). Averaged over channels. 0 for images smaller
 /// than 3x3. Samples at most ~1e6 pixels (strided), so cost is bounded.
 double EstimateDifferenceNoise(const cv::Mat& difference);
+/// The same estimate of `a - b` (same size and type) without forming the
+/// difference image: bit-identical to EstimateDifferenceNoise(a - b).
+double EstimateDifferenceNoise(const cv::Mat& a, const cv::Mat& b);
 
 // ---------------------------------------------------------------- backlit --
 
@@ -237,13 +240,14 @@ struct ForegroundOptions {
 
 /// Un-premultiplies a premultiplied foreground estimate Fp (CV_32FC3) with
 /// regularisation (see ForegroundOptions); 0 where alpha == 0; clamped >= 0.
+/// Rows on up to `threads` threads (0 = all); the result does not depend on it.
 void UnpremultiplyForeground(const cv::Mat& premultiplied, const cv::Mat& alpha, const ForegroundOptions& options,
-                             cv::Mat* foreground);
+                             cv::Mat* foreground, int threads = 0);
 
 /// Foreground colour for a frame composited over a known plate:
 /// Fp = frame - (1 - alpha) plate, then UnpremultiplyForeground.
 io::Status EstimateForeground(const cv::Mat& frame, const cv::Mat& plate, const cv::Mat& alpha,
-                              const ForegroundOptions& options, cv::Mat* foreground);
+                              const ForegroundOptions& options, cv::Mat* foreground, int threads = 0);
 
 /// Linear composite alpha F + (1 - alpha) background (CV_32FC3).
 cv::Mat CompositeOver(const cv::Mat& foreground, const cv::Mat& alpha, const cv::Mat& background);
