@@ -147,6 +147,22 @@ uint64_t Product(const std::vector<uint64_t>& v) {
   return std::accumulate(v.begin(), v.end(), uint64_t{1}, std::multiplies<uint64_t>());
 }
 
+// The bytes HDF5's shuffle then deflate filters store for one chunk of
+// `raw` (H5Z_filter_shuffle: byte k of every element together;
+// H5Z_filter_deflate: zlib compress2 at the dataset's level).
+int ShuffleDeflate(const unsigned char* raw, size_t bytes, size_t elem, int level, std::vector<unsigned char>* shuffled,
+                   std::vector<unsigned char>* out) {
+  shuffled->resize(bytes);
+  const size_t n = bytes / elem;
+  for (size_t j = 0; j < elem; ++j)
+    for (size_t i = 0; i < n; ++i) (*shuffled)[j * n + i] = raw[i * elem + j];
+  uLongf out_bytes = compressBound(static_cast<uLong>(bytes));
+  out->resize(out_bytes);
+  const int rc = compress2(out->data(), &out_bytes, shuffled->data(), static_cast<uLong>(bytes), std::min(level, 9));
+  out->resize(out_bytes);
+  return rc;
+}
+
 }  // namespace
 
 struct H5Writer::Impl {
@@ -154,6 +170,10 @@ struct H5Writer::Impl {
     Hid id;
     H5DatasetSpec spec;
     uint64_t samples = 0;
+    // Deflate level when the chunk is one whole sample and the filters are
+    // exactly shuffle then deflate (chunks may be packed off the HDF5
+    // thread); -1 when not; -2 until looked up.
+    int packable_level = -2;
   };
   Hid file;
   std::string path;  // temp path, for messages
@@ -194,6 +214,29 @@ struct H5Writer::Impl {
     d.samples = dims[0];
     d.id = std::move(id);
     return &datasets.emplace(name, std::move(d)).first->second;
+  }
+
+  // See Dataset::packable_level.
+  int PackableLevel(Dataset& d) {
+    if (d.packable_level != -2) return d.packable_level;
+    d.packable_level = -1;
+    Hid dcpl(H5Dget_create_plist(d.id.get()), H5Pclose);
+    if (!dcpl.valid() || H5Pget_layout(dcpl.get()) != H5D_CHUNKED) return -1;
+    const int rank = static_cast<int>(d.spec.sample_shape.size()) + 1;
+    std::vector<hsize_t> chunk(static_cast<size_t>(rank));
+    if (H5Pget_chunk(dcpl.get(), rank, chunk.data()) != rank || chunk[0] != 1) return -1;
+    for (int k = 1; k < rank; ++k)
+      if (chunk[static_cast<size_t>(k)] != d.spec.sample_shape[static_cast<size_t>(k - 1)]) return -1;
+    if (H5Pget_nfilters(dcpl.get()) != 2) return -1;
+    unsigned flags = 0, values[8] = {};
+    size_t nvalues = 8;
+    if (H5Pget_filter2(dcpl.get(), 0, &flags, &nvalues, values, 0, nullptr, nullptr) != H5Z_FILTER_SHUFFLE) return -1;
+    nvalues = 8;
+    if (H5Pget_filter2(dcpl.get(), 1, &flags, &nvalues, values, 0, nullptr, nullptr) != H5Z_FILTER_DEFLATE ||
+        nvalues < 1)
+      return -1;
+    d.packable_level = static_cast<int>(values[0]);
+    return d.packable_level;
   }
 
   // Appends count samples of raw memory laid out as `mem_type`.
@@ -463,15 +506,8 @@ Status H5Writer::WriteImage(const std::string& name, const cv::Mat& image, H5Typ
         std::memcpy(raw.data(), rows.data, used);
       }
       std::fill(raw.begin() + static_cast<std::ptrdiff_t>(used), raw.end(), 0);  // edge chunk padding
-      const size_t n = chunk_bytes / elem;
-      for (size_t j = 0; j < elem; ++j)
-        for (size_t i = 0; i < n; ++i) shuffled[j * n + i] = raw[i * elem + j];
-      std::vector<unsigned char>& out = packed[static_cast<size_t>(k)];
-      uLongf out_bytes = compressBound(static_cast<uLong>(chunk_bytes));
-      out.resize(out_bytes);
       zlib_status[static_cast<size_t>(k)] =
-          compress2(out.data(), &out_bytes, shuffled.data(), static_cast<uLong>(chunk_bytes), std::min(gzip_level, 9));
-      out.resize(out_bytes);
+          ShuffleDeflate(raw.data(), chunk_bytes, elem, gzip_level, &shuffled, &packed[static_cast<size_t>(k)]);
     }
   });
   for (int64_t k = 0; k < n_chunks; ++k) {
@@ -506,6 +542,77 @@ Status H5Writer::AppendFloat(const std::string& name, const float* data, uint64_
     return impl_->Append(name, -1, halves.data(), count, H5Type::kFloat16);
   }
   return impl_->Append(name, H5T_NATIVE_FLOAT, data, count, H5Type::kFloat32, H5Type::kFloat16);
+}
+
+Status H5Writer::PackFloatSamples(std::vector<FloatSample>* samples, int threads) {
+  LUMENRIG_RETURN_IF_ERROR(impl_->CheckOpen());
+  struct Job {
+    size_t index;
+    size_t values;
+    size_t elem;
+    int level;
+  };
+  std::vector<Job> jobs;
+  for (size_t k = 0; k < samples->size(); ++k) {
+    FloatSample& s = (*samples)[k];
+    s.packed = false;
+    s.chunk.clear();
+    auto found = impl_->Find(s.name);  // HDF5 calls stay on this thread
+    if (!found.ok()) return found.status();
+    Impl::Dataset& d = **found;
+    if (d.spec.type != H5Type::kFloat16 && d.spec.type != H5Type::kFloat32) continue;
+    const int level = impl_->PackableLevel(d);
+    if (level < 0) continue;
+    jobs.push_back({k, static_cast<size_t>(Product(d.spec.sample_shape)),
+                    d.spec.type == H5Type::kFloat16 ? size_t{2} : size_t{4}, level});
+  }
+  std::vector<int> zlib_status(jobs.size(), Z_OK);
+  ParallelFor(0, static_cast<int64_t>(jobs.size()), 1, threads, [&](int64_t b, int64_t e) {
+    std::vector<unsigned char> raw, shuffled, deflated;
+    for (int64_t j = b; j < e; ++j) {
+      const Job& job = jobs[static_cast<size_t>(j)];
+      FloatSample& s = (*samples)[job.index];
+      raw.resize(job.values * job.elem);
+      if (job.elem == 2) {
+        // OpenCV's float -> half (round to nearest even), as AppendFloat.
+        constexpr size_t kRow = size_t{1} << 30;  // int column count per cv::Mat
+        for (size_t begin = 0; begin < job.values; begin += kRow) {
+          const size_t len = std::min(kRow, job.values - begin);
+          cv::Mat dst(1, static_cast<int>(len), CV_16F, raw.data() + 2 * begin);
+          cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(s.data + begin)).convertTo(dst, CV_16F);
+        }
+      } else {
+        std::memcpy(raw.data(), s.data, raw.size());
+      }
+      zlib_status[static_cast<size_t>(j)] =
+          ShuffleDeflate(raw.data(), raw.size(), job.elem, job.level, &shuffled, &deflated);
+      s.chunk.assign(deflated.begin(), deflated.end());  // held until written: no compressBound slack
+    }
+  });
+  for (size_t j = 0; j < jobs.size(); ++j) {
+    FloatSample& s = (*samples)[jobs[j].index];
+    if (zlib_status[j] != Z_OK)
+      return Status::Internal(fmt::format("{}: zlib failed to compress a chunk of {}", impl_->path, s.name));
+    s.packed = true;
+  }
+  return Status::Ok();
+}
+
+Status H5Writer::AppendFloatSample(const FloatSample& sample) {
+  if (!sample.packed) return AppendFloat(sample.name, sample.data, 1);
+  LUMENRIG_RETURN_IF_ERROR(impl_->CheckOpen());
+  auto found = impl_->Find(sample.name);
+  if (!found.ok()) return found.status();
+  Impl::Dataset& d = **found;
+  std::vector<hsize_t> dims{d.samples + 1}, offset(d.spec.sample_shape.size() + 1, 0);
+  for (uint64_t s : d.spec.sample_shape) dims.push_back(s);
+  offset[0] = d.samples;
+  if (H5Dset_extent(d.id.get(), dims.data()) < 0) return H5Fail(impl_->path, "cannot extend dataset " + sample.name);
+  if (H5Dwrite_chunk(d.id.get(), H5P_DEFAULT, /*filters=*/0, offset.data(), sample.chunk.size(), sample.chunk.data()) <
+      0)
+    return H5Fail(impl_->path, "cannot write dataset " + sample.name);
+  d.samples += 1;
+  return Status::Ok();
 }
 
 Status H5Writer::AppendDouble(const std::string& name, const double* data, uint64_t count) {

@@ -518,28 +518,46 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
         }
       }
     });
+    // The batch's image fields are compressed on all threads first (HDF5
+    // would deflate them one after another on this thread), then every field
+    // is written in sample order, as before.
+    constexpr int kImageFields = 8;
+    std::vector<io::H5Writer::FloatSample> packed;
+    packed.reserve(static_cast<size_t>((last - first) * kImageFields));
+    for (int64_t i = first; i < last; ++i) {
+      const SampleOut& so = outs[static_cast<size_t>(i - first)];
+      auto add = [&](const char* name, const float* data) {
+        io::H5Writer::FloatSample f;
+        f.name = std::string("/pairs/") + name;
+        f.data = data;
+        packed.push_back(std::move(f));
+      };
+      for (const cv::Mat* m : {&so.input, &so.target, &so.alpha, &so.albedo, &so.normals, &so.background, &so.diffuse})
+        CV_Assert(m->isContinuous());
+      add("input", so.input.ptr<float>());
+      add("target", so.target.ptr<float>());
+      add("alpha", so.alpha.ptr<float>());
+      add("albedo", so.albedo.ptr<float>());
+      add("normals", so.normals.ptr<float>());
+      add("background", so.background.ptr<float>());
+      add("light_diffuse", so.diffuse.ptr<float>());
+      add("light_specular", so.specular.data());
+    }
+    LUMENRIG_RETURN_IF_ERROR(writer->PackFloatSamples(&packed, o.threads));
     // Write in sample order.
     const std::string subject = session.Id();
     const std::string split = SplitForSubject(subject);
     for (int64_t i = first; i < last; ++i) {
       const SampleOut& so = outs[static_cast<size_t>(i - first)];
-      auto put = [&](const std::string& name, const cv::Mat& m) {
-        CV_Assert(m.isContinuous());
-        return writer->AppendFloat("/pairs/" + name, m.ptr<float>(), 1);
-      };
+      const io::H5Writer::FloatSample* fields = packed.data() + (i - first) * kImageFields;
+      auto put = [&](int field) { return writer->AppendFloatSample(fields[field]); };
       const bool abort_now = o.debug_abort_after >= 0 && i == o.debug_abort_after;
-      LUMENRIG_RETURN_IF_ERROR(put("input", so.input));
+      LUMENRIG_RETURN_IF_ERROR(put(0));  // input
       if (abort_now) {
         LUMENRIG_RETURN_IF_ERROR(writer->Flush());
         return io::Status::Internal(fmt::format("stopped after {} complete samples (--debug-abort-after)", i));
       }
-      LUMENRIG_RETURN_IF_ERROR(put("target", so.target));
-      LUMENRIG_RETURN_IF_ERROR(put("alpha", so.alpha));
-      LUMENRIG_RETURN_IF_ERROR(put("albedo", so.albedo));
-      LUMENRIG_RETURN_IF_ERROR(put("normals", so.normals));
-      LUMENRIG_RETURN_IF_ERROR(put("background", so.background));
-      LUMENRIG_RETURN_IF_ERROR(put("light_diffuse", so.diffuse));
-      LUMENRIG_RETURN_IF_ERROR(writer->AppendFloat("/pairs/light_specular", so.specular.data(), 1));
+      for (int field = 1; field < kImageFields; ++field) LUMENRIG_RETURN_IF_ERROR(put(field));
       LUMENRIG_RETURN_IF_ERROR(writer->AppendStrings("/pairs/subject", {subject}));
       LUMENRIG_RETURN_IF_ERROR(writer->AppendStrings("/pairs/camera", {cc.camera->id}));
       LUMENRIG_RETURN_IF_ERROR(writer->AppendStrings("/pairs/env_name", {envs[so.draw.env_tgt].name}));

@@ -271,6 +271,77 @@ TEST(Hdf5Writer, ErrorsAreOneLineNamingTheFileAndPrintNothing) {
   EXPECT_NE(no_obj.message().find("a.h5"), std::string::npos) << no_obj.message();
 }
 
+TEST(Hdf5Writer, PackedSamplesStoreTheBytesOfHdf5sOwnFilters) {
+  // Samples appended as chunks packed off the HDF5 thread (PackFloatSamples)
+  // must give the datasets AppendFloat gives: same values and, chunk by
+  // chunk, the bytes HDF5's own shuffle + deflate filters store (reference:
+  // h5py writing the same data through HDF5). Datasets whose chunk is not
+  // one sample, or that are not compressed, fall back to AppendFloat.
+  TempDir dir;
+  const int kSamples = 5;
+  std::vector<float> data(static_cast<size_t>(kSamples) * 6 * 7 * 3);
+  cv::Mat view(1, static_cast<int>(data.size()), CV_32F, data.data());
+  cv::randu(view, -3.0f, 3.0f);
+  const std::string path = dir / "p.h5";
+  const std::vector<H5DatasetSpec> specs = {
+      {"/pairs/half", {6, 7, 3}, H5Type::kFloat16, 1, 0},
+      {"/pairs/single", {6, 7, 3}, H5Type::kFloat32, 3, 0},
+      {"/pairs/two_per_chunk", {6, 7, 3}, H5Type::kFloat16, 1, 2},
+      {"/pairs/plain", {6, 7, 3}, H5Type::kFloat16, 0, 0}};
+  auto append = [&](H5Writer* w, int first, int last, size_t* packed_count) {
+    std::vector<H5Writer::FloatSample> samples;
+    for (int i = first; i < last; ++i)
+      for (const auto& spec : specs) {
+        H5Writer::FloatSample s;
+        s.name = spec.name;
+        s.data = data.data() + static_cast<size_t>(i) * 6 * 7 * 3;
+        samples.push_back(std::move(s));
+      }
+    ASSERT_TRUE(w->PackFloatSamples(&samples, 2).ok());
+    for (const auto& s : samples) {
+      *packed_count += s.packed;
+      ASSERT_TRUE(w->AppendFloatSample(s).ok()) << s.name;
+    }
+  };
+  size_t packed = 0;
+  {
+    auto w = H5Writer::Create(path, false);
+    ASSERT_TRUE(w.ok()) << w.status().message();
+    for (const auto& spec : specs) ASSERT_TRUE((*w)->CreateDataset(spec).ok()) << spec.name;
+    append(w->get(), 0, 3, &packed);
+    ASSERT_TRUE((*w)->Flush().ok());
+  }  // left unfinished, as a killed run leaves it
+  {
+    auto w = H5Writer::Resume(path);  // datasets reopened: filters read from the file
+    ASSERT_TRUE(w.ok()) << w.status().message();
+    for (const auto& spec : specs) ASSERT_TRUE((*w)->CreateDataset(spec).ok()) << spec.name;
+    append(w->get(), 3, kSamples, &packed);
+    ASSERT_TRUE((*w)->Finalize().ok());
+  }
+  EXPECT_EQ(packed, 2u * kSamples);  // only "half" and "single" qualify
+  WriteRaw(dir / "data.f32", data);
+  const std::string script = R"PY(
+import sys, h5py, numpy as np
+f = h5py.File(sys.argv[1], 'r')
+src = np.fromfile(sys.argv[2], dtype=np.float32).reshape(5, 6, 7, 3)
+g = h5py.File(sys.argv[3], 'w')
+for name, dtype, level in (('half', np.float16, 1), ('single', np.float32, 3)):
+    d = f['/pairs/' + name]
+    assert d.shape == (5, 6, 7, 3) and d.dtype == dtype and d.chunks == (1, 6, 7, 3), (d.shape, d.dtype, d.chunks)
+    assert d.compression == 'gzip' and d.compression_opts == level and d.shuffle
+    assert np.array_equal(d[...], src.astype(dtype)), name
+    ref = g.create_dataset(name, data=src.astype(dtype), chunks=(1, 6, 7, 3), shuffle=True, compression='gzip',
+                           compression_opts=level)
+    for i in range(5):
+        assert d.id.read_direct_chunk((i, 0, 0, 0)) == ref.id.read_direct_chunk((i, 0, 0, 0)), (name, i)
+for name in ('two_per_chunk', 'plain'):
+    assert np.array_equal(f['/pairs/' + name][...], src.astype(np.float16)), name
+print("ok")
+)PY";
+  auto r = RunPython(dir, script, path + " " + (dir / "data.f32") + " " + (dir / "ref.h5"));
+  EXPECT_EQ(r.exit_code, 0) << r.out << r.err;
+}
+
 TEST(Hdf5Writer, WriteImageIsReadByH5pyAndSameContentGivesSameBytes) {
   TempDir dir;
   cv::Mat img(70, 9, CV_32FC3);

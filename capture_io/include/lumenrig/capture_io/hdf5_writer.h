@@ -72,6 +72,24 @@ class H5Writer {
   Status AppendInt64(const std::string& name, const int64_t* data, uint64_t count);
   Status AppendStrings(const std::string& name, const std::vector<std::string>& values);
 
+  /// One float sample for a float dataset, compressed ahead of its append.
+  struct FloatSample {
+    std::string name;                  ///< dataset
+    const float* data = nullptr;       ///< prod(sample_shape) values; must outlive AppendFloatSample
+    std::vector<unsigned char> chunk;  ///< filled by PackFloatSamples
+    bool packed = false;               ///< chunk holds the stored bytes
+  };
+  /// HDF5 runs a dataset's filters on the writing thread, chunk after
+  /// chunk. For every sample whose dataset's chunk is exactly one sample with
+  /// the shuffle and deflate filters (as CreateDataset makes them with
+  /// chunk_samples 1), this converts, shuffles and deflates the chunk on up
+  /// to `threads` threads (0 = all), bytes equal to HDF5's own filters'.
+  /// Other samples are left for a plain AppendFloat.
+  Status PackFloatSamples(std::vector<FloatSample>* samples, int threads = 0);
+  /// Appends one sample: the packed chunk with H5Dwrite_chunk, else
+  /// AppendFloat(name, data, 1). The file is the same either way.
+  Status AppendFloatSample(const FloatSample& sample);
+
   /// Shrinks dataset `name` to its first `count` samples (used by resume to
   /// drop a partially appended sample). count > NumSamples is an error.
   Status Truncate(const std::string& name, uint64_t count);
