@@ -283,11 +283,10 @@ TEST(Hdf5Writer, PackedSamplesStoreTheBytesOfHdf5sOwnFilters) {
   cv::Mat view(1, static_cast<int>(data.size()), CV_32F, data.data());
   cv::randu(view, -3.0f, 3.0f);
   const std::string path = dir / "p.h5";
-  const std::vector<H5DatasetSpec> specs = {
-      {"/pairs/half", {6, 7, 3}, H5Type::kFloat16, 1, 0},
-      {"/pairs/single", {6, 7, 3}, H5Type::kFloat32, 3, 0},
-      {"/pairs/two_per_chunk", {6, 7, 3}, H5Type::kFloat16, 1, 2},
-      {"/pairs/plain", {6, 7, 3}, H5Type::kFloat16, 0, 0}};
+  const std::vector<H5DatasetSpec> specs = {{"/pairs/half", {6, 7, 3}, H5Type::kFloat16, 1, 0},
+                                            {"/pairs/single", {6, 7, 3}, H5Type::kFloat32, 3, 0},
+                                            {"/pairs/two_per_chunk", {6, 7, 3}, H5Type::kFloat16, 1, 2},
+                                            {"/pairs/plain", {6, 7, 3}, H5Type::kFloat16, 0, 0}};
   auto append = [&](H5Writer* w, int first, int last, size_t* packed_count) {
     std::vector<H5Writer::FloatSample> samples;
     for (int i = first; i < last; ++i)
