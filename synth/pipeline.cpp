@@ -354,7 +354,13 @@ struct Executor {
     for (auto it = fused.begin(); it != fused.end();) {
       if (plan->units[static_cast<size_t>(it->first)].session_index == session_index) {
         std::error_code ec;
-        for (const auto& f : it->second.outputs) fs::remove(f, ec);
+        std::set<fs::path> dirs;
+        for (const auto& f : it->second.outputs) {
+          fs::remove(f, ec);
+          dirs.insert(fs::path(f).parent_path());
+        }
+        // The unit's folder and its camera folder, each only when left empty.
+        for (const auto& d : dirs) fs::remove(d, ec), fs::remove(d.parent_path(), ec);
         it = fused.erase(it);
       } else {
         ++it;

@@ -236,6 +236,8 @@ TEST_F(PipelineTest, QaFailStopsLaterStagesUnlessForced) {
   EXPECT_FALSE(fs::exists(out / "kh-bust-03.h5"));
   // The check solved the normals in its reading pass; a FAIL leaves none.
   EXPECT_FALSE(fs::exists(out / "kh-bust-03/cam00/normals/normals.exr"));
+  EXPECT_FALSE(fs::exists(out / "kh-bust-03/cam00")) << "empty folder left behind";
+  EXPECT_TRUE(fs::exists(out / "kh-bust-03/check/check.json"));
   auto f = RunCli("run " + bad.path() + "/s --out " + forced.path() + " --stages check,normals,matte,assemble --force");
   EXPECT_EQ(f.exit_code, 0) << f.err;
   EXPECT_TRUE(fs::exists(forced / "kh-bust-03.h5"));
