@@ -159,8 +159,9 @@ io::Expected<std::unique_ptr<StreamedCheck>> StreamedCheck::Begin(const io::Sess
   result->light_count = static_cast<int>(session.rig.lights.size());
   result->options = options;
   result->options.progress = nullptr;
-  p.integrity = check_detail::MakeLine("completeness", "Every light has a readable OLAT frame per camera", "problems",
-                                       std::numeric_limits<double>::quiet_NaN(), 0.0);
+  p.integrity = check_detail::MakeLine("completeness",
+                                       "Every listed frame present and readable (OLAT, tracking, plates, matte pairs)",
+                                       "problems", std::numeric_limits<double>::quiet_NaN(), 0.0);
   LUMENRIG_RETURN_IF_ERROR(check_detail::ScanBegin(session, options, result, &p.integrity, threads, &p.scan));
   return check;
 }
