@@ -147,6 +147,18 @@ uint64_t Product(const std::vector<uint64_t>& v) {
   return std::accumulate(v.begin(), v.end(), uint64_t{1}, std::multiplies<uint64_t>());
 }
 
+// float -> IEEE half with OpenCV's vectorised conversion (round to nearest
+// even; out-of-range values become +-inf), in rows of at most 2^30 values
+// (a cv::Mat's int column count).
+void FloatsToHalves(const float* src, uint64_t n, uint16_t* dst) {
+  constexpr uint64_t kRow = uint64_t{1} << 30;
+  for (uint64_t begin = 0; begin < n; begin += kRow) {
+    const uint64_t len = std::min(kRow, n - begin);
+    cv::Mat out(1, static_cast<int>(len), CV_16F, dst + begin);
+    cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(src + begin)).convertTo(out, CV_16F);
+  }
+}
+
 // The bytes HDF5's shuffle then deflate filters store for one chunk of
 // `raw` (H5Z_filter_shuffle: byte k of every element together;
 // H5Z_filter_deflate: zlib compress2 at the dataset's level).
@@ -526,19 +538,11 @@ Status H5Writer::AppendFloat(const std::string& name, const float* data, uint64_
   auto found = impl_->Find(name);
   if (!found.ok()) return found.status();
   if ((*found)->spec.type == H5Type::kFloat16) {
-    // Convert in memory (OpenCV's vectorised float->half, round to nearest
-    // even; out-of-range values become +-inf) and write with the file type.
+    // Convert in memory and write with the file type.
     const uint64_t n = count * Product((*found)->spec.sample_shape);
     if (n == 0) return Status::Ok();
-    // Row of at most 2^30 elements per cv::Mat (int column count).
-    constexpr uint64_t kRow = uint64_t{1} << 30;
-    const uint64_t rows = (n + kRow - 1) / kRow;
     std::vector<uint16_t> halves(n);
-    for (uint64_t r = 0; r < rows; ++r) {
-      const uint64_t begin = r * kRow, len = std::min(kRow, n - begin);
-      cv::Mat dst(1, static_cast<int>(len), CV_16F, halves.data() + begin);
-      cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(data + begin)).convertTo(dst, CV_16F);
-    }
+    FloatsToHalves(data, n, halves.data());
     return impl_->Append(name, -1, halves.data(), count, H5Type::kFloat16);
   }
   return impl_->Append(name, H5T_NATIVE_FLOAT, data, count, H5Type::kFloat32, H5Type::kFloat16);
@@ -574,13 +578,7 @@ Status H5Writer::PackFloatSamples(std::vector<FloatSample>* samples, int threads
       FloatSample& s = (*samples)[job.index];
       raw.resize(job.values * job.elem);
       if (job.elem == 2) {
-        // OpenCV's float -> half (round to nearest even), as AppendFloat.
-        constexpr size_t kRow = size_t{1} << 30;  // int column count per cv::Mat
-        for (size_t begin = 0; begin < job.values; begin += kRow) {
-          const size_t len = std::min(kRow, job.values - begin);
-          cv::Mat dst(1, static_cast<int>(len), CV_16F, raw.data() + 2 * begin);
-          cv::Mat(1, static_cast<int>(len), CV_32F, const_cast<float*>(s.data + begin)).convertTo(dst, CV_16F);
-        }
+        FloatsToHalves(s.data, job.values, reinterpret_cast<uint16_t*>(raw.data()));  // as AppendFloat
       } else {
         std::memcpy(raw.data(), s.data, raw.size());
       }

@@ -532,15 +532,17 @@ io::Status WritePairs(const PairsOptions& o, PairsSummary* summary) {
         f.data = data;
         packed.push_back(std::move(f));
       };
-      for (const cv::Mat* m : {&so.input, &so.target, &so.alpha, &so.albedo, &so.normals, &so.background, &so.diffuse})
-        CV_Assert(m->isContinuous());
-      add("input", so.input.ptr<float>());
-      add("target", so.target.ptr<float>());
-      add("alpha", so.alpha.ptr<float>());
-      add("albedo", so.albedo.ptr<float>());
-      add("normals", so.normals.ptr<float>());
-      add("background", so.background.ptr<float>());
-      add("light_diffuse", so.diffuse.ptr<float>());
+      auto add_image = [&](const char* name, const cv::Mat& m) {
+        CV_Assert(m.isContinuous());
+        add(name, m.ptr<float>());
+      };
+      add_image("input", so.input);
+      add_image("target", so.target);
+      add_image("alpha", so.alpha);
+      add_image("albedo", so.albedo);
+      add_image("normals", so.normals);
+      add_image("background", so.background);
+      add_image("light_diffuse", so.diffuse);
       add("light_specular", so.specular.data());
     }
     LUMENRIG_RETURN_IF_ERROR(writer->PackFloatSamples(&packed, o.threads));

@@ -43,18 +43,23 @@ struct Checked {
   io::Session session;
 };
 
-Checked SimulateAndCheck(const synth::SimOptions& sim, const test::TempDir& tmp, CheckOptions options = {}) {
-  Checked out;
+/// Simulates a session into tmp/session and loads it as the check does
+/// (files may be missing or damaged afterwards).
+io::Expected<io::Session> SimulateAndLoad(const synth::SimOptions& sim, const test::TempDir& tmp) {
   const std::string dir = tmp / "session";
-  io::Status st = synth::SimulateSession(sim, dir);
-  EXPECT_TRUE(st.ok()) << st.message();
+  LUMENRIG_RETURN_IF_ERROR(synth::SimulateSession(sim, dir));
   io::LoadOptions load;
   load.require_files = false;
-  auto session = io::LoadSession(dir, load);
+  return io::LoadSession(dir, load);
+}
+
+Checked SimulateAndCheck(const synth::SimOptions& sim, const test::TempDir& tmp, CheckOptions options = {}) {
+  Checked out;
+  auto session = SimulateAndLoad(sim, tmp);
   EXPECT_TRUE(session.ok()) << session.status().message();
   if (!session.ok()) return out;
   out.session = *session;
-  st = CheckSession(out.session, options, &out.result, 2);
+  const io::Status st = CheckSession(out.session, options, &out.result, 2);
   EXPECT_TRUE(st.ok()) << st.message();
   return out;
 }
@@ -208,13 +213,9 @@ TEST(SessionCheck, MissingFrameIsAFailNotACrash) {
 }
 
 TEST(SessionCheck, FileListedButAbsentIsNamed) {
-  synth::SimOptions sim = Small(5);
   test::TempDir tmp;
-  ASSERT_TRUE(synth::SimulateSession(sim, tmp / "session").ok());
-  io::LoadOptions load;
-  load.require_files = false;
-  auto session = io::LoadSession(tmp / "session", load);
-  ASSERT_TRUE(session.ok());
+  auto session = SimulateAndLoad(Small(5), tmp);
+  ASSERT_TRUE(session.ok()) << session.status().message();
   const std::string victim = session->cameras[0].olat[9].path;
   const int light = session->cameras[0].olat[9].light;
   fs::remove(victim);
@@ -231,13 +232,9 @@ TEST(SessionCheck, FileListedButAbsentIsNamed) {
 }
 
 TEST(SessionCheck, TruncatedOrAbsentMatteFilesAreNamed) {
-  synth::SimOptions sim = Small(5);
   test::TempDir tmp;
-  ASSERT_TRUE(synth::SimulateSession(sim, tmp / "session").ok());
-  io::LoadOptions load;
-  load.require_files = false;
-  auto session = io::LoadSession(tmp / "session", load);
-  ASSERT_TRUE(session.ok());
+  auto session = SimulateAndLoad(Small(5), tmp);
+  ASSERT_TRUE(session.ok()) << session.status().message();
   ASSERT_GE(session->cameras[0].matte_pairs.size(), 2u);
   {
     CheckResult clean;
