@@ -24,7 +24,10 @@ mkdir -p /tmp/lumenrig-normals-bench
 du -sh "$dir"
 # Two decode floors, with the allocator setting the CLI uses (cli/main.cpp):
 # to float (what the solve consumes), and to the stored half floats (the
-# cheapest decode; the stage now keeps half frames as half).
+# cheapest decode; the stage now keeps half frames as half). Both inflate
+# with libdeflate as the stage does (capture_io/zlib_inflate.h); the last
+# lines repeat one configuration with zlib's inflate (OpenEXR's stock
+# decoder, LUMENRIG_INFLATE=zlib) for decode and stage alike.
 export GLIBC_TUNABLES=glibc.malloc.hugetlb=1
 # This machine's speed drifts over minutes, so each stage run is paired with
 # decodes measured right before it.
@@ -53,3 +56,15 @@ for method in lsq robust; do
          "(read + solve) cpu / decode cpu = $(echo "($rcpu + $scpu) / $decode_cpu" | bc -l | cut -c1-5)"
   done
 done
+
+# Side by side: zlib's inflate (OpenEXR's stock decoder) for decode and stage.
+export LUMENRIG_INFLATE=zlib
+zline=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 half)
+echo "zlib inflate: $zline"
+zdecode=$(echo "$zline" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
+zlog=$(NO_COLOR=1 "$build/cli/lumenrig" normals "$dir" --out "$out" --method robust --mem-budget 4G \
+       --threads "$threads" --force)
+echo "$zlog" | tail -3
+zwall=$(echo "$zlog" | sed -n 's/^normals: wall \([0-9.]*\) s.*/\1/p')
+echo "  -> robust, budget 4G, zlib inflate: whole stage wall / half decode wall = $(echo "$zwall / $zdecode" | bc -l | cut -c1-5)"
+unset LUMENRIG_INFLATE

@@ -18,6 +18,7 @@
 #include "band_readers_internal.h"
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/color.h"
+#include "lumenrig/capture_io/zlib_inflate.h"
 
 namespace fs = std::filesystem;
 
@@ -51,6 +52,10 @@ const char* FormatName(FileFormat format) {
 }
 
 namespace {
+
+// Links zlib_inflate.o into every program that reads images, so OpenEXR's
+// uncompress() calls bind to the libdeflate one (zlib_inflate.h).
+[[maybe_unused]] const char* const kInflateEngine = ZlibInflateEngine();
 
 Status FileMissing(const std::string& path) {
   std::error_code ec;

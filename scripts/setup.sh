@@ -11,7 +11,7 @@ PACKAGES=(
   build-essential cmake ninja-build pkg-config
   libopenexr-dev openexr libopencv-dev libeigen3-dev libhdf5-dev libtbb-dev
   libgtest-dev libgmock-dev libbenchmark-dev nlohmann-json3-dev libcli11-dev libfmt-dev
-  libpng-dev libtiff-dev libxxhash-dev zlib1g-dev
+  libpng-dev libtiff-dev libxxhash-dev zlib1g-dev libdeflate-dev
   libopenmpi-dev openmpi-bin
   python3 python3-h5py python3-numpy python3-opencv
   chromium fonts-dejavu-core
