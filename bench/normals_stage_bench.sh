@@ -25,9 +25,9 @@ du -sh "$dir"
 # Two decode floors, with the allocator setting the CLI uses (cli/main.cpp):
 # to float (what the solve consumes), and to the stored half floats (the
 # cheapest decode; the stage now keeps half frames as half). Both inflate
-# with libdeflate as the stage does (capture_io/zlib_inflate.h); the last
-# lines repeat one configuration with zlib's inflate (OpenEXR's stock
-# decoder, LUMENRIG_INFLATE=zlib) for decode and stage alike.
+# with libdeflate as the stage does (capture_io/zlib_libdeflate.h); the last
+# lines repeat one configuration with zlib (OpenEXR's stock codec,
+# LUMENRIG_LIBDEFLATE=0) for decode and stage alike.
 export GLIBC_TUNABLES=glibc.malloc.hugetlb=1
 # This machine's speed drifts over minutes, so each stage run is paired with
 # decodes measured right before it.
@@ -57,14 +57,14 @@ for method in lsq robust; do
   done
 done
 
-# Side by side: zlib's inflate (OpenEXR's stock decoder) for decode and stage.
-export LUMENRIG_INFLATE=zlib
+# Side by side: zlib (OpenEXR's stock codec) for decode and stage.
+export LUMENRIG_LIBDEFLATE=0
 zline=$("$build/bench/normals_bench" --decode "$dir" "$threads" 16 half)
-echo "zlib inflate: $zline"
+echo "zlib: $zline"
 zdecode=$(echo "$zline" | sed -n 's/.*wall \([0-9.]*\) s$/\1/p')
 zlog=$(NO_COLOR=1 "$build/cli/lumenrig" normals "$dir" --out "$out" --method robust --mem-budget 4G \
        --threads "$threads" --force)
 echo "$zlog" | tail -3
 zwall=$(echo "$zlog" | sed -n 's/^normals: wall \([0-9.]*\) s.*/\1/p')
-echo "  -> robust, budget 4G, zlib inflate: whole stage wall / half decode wall = $(echo "$zwall / $zdecode" | bc -l | cut -c1-5)"
-unset LUMENRIG_INFLATE
+echo "  -> robust, budget 4G, zlib: whole stage wall / half decode wall = $(echo "$zwall / $zdecode" | bc -l | cut -c1-5)"
+unset LUMENRIG_LIBDEFLATE

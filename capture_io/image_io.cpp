@@ -18,7 +18,7 @@
 #include "band_readers_internal.h"
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/color.h"
-#include "lumenrig/capture_io/zlib_inflate.h"
+#include "lumenrig/capture_io/zlib_libdeflate.h"
 
 namespace fs = std::filesystem;
 
@@ -53,9 +53,10 @@ const char* FormatName(FileFormat format) {
 
 namespace {
 
-// Links zlib_inflate.o into every program that reads images, so OpenEXR's
-// uncompress() calls bind to the libdeflate one (zlib_inflate.h).
-[[maybe_unused]] const char* const kInflateEngine = ZlibInflateEngine();
+// Links zlib_libdeflate.o into every program that reads or writes images, so
+// OpenEXR's uncompress() and compress2() calls bind to the libdeflate ones
+// (zlib_libdeflate.h).
+[[maybe_unused]] const bool kLibdeflateEnabled = LibdeflateEnabled();
 
 Status FileMissing(const std::string& path) {
   std::error_code ec;
