@@ -508,31 +508,34 @@ io::Status ScanBegin(const io::Session& session, const CheckOptions& options, Ch
       cs.width = ctx.width;
       cs.height = ctx.height;
       if (ctx.width == 0) continue;  // nothing readable; completeness reports each frame
-      const cv::Size size(ctx.width, ctx.height);
+      // False, with a finding, when a file (`what`: "mask", "dark frame"...)
+      // did not read or is not the OLAT frames' size.
+      auto usable = [&](const std::string& path, const std::string& what, const io::Status& read, int w, int h) {
+        if (!read.ok()) {
+          fail(path, fmt::format("camera {}: {} unreadable: {}", cam.id, what, read.message()));
+          return false;
+        }
+        if (w != ctx.width || h != ctx.height) {
+          fail(path, fmt::format("camera {}: {} is {}x{}, the OLAT frames are {}x{}", cam.id, what, w, h, ctx.width,
+                                 ctx.height));
+          return false;
+        }
+        return true;
+      };
       auto read_aux = [&](const std::string& path, const char* key) -> cv::Mat {
         if (path.empty()) return cv::Mat();
         auto img = io::ReadImage(path, decode);
-        if (!img.ok()) {
-          fail(path, fmt::format("camera {}: {} frame unreadable: {}", cam.id, key, img.status().message()));
+        const bool ok = img.ok();
+        if (!usable(path, fmt::format("{} frame", key), img.status(), ok ? img->cols : 0, ok ? img->rows : 0))
           return cv::Mat();
-        }
-        if (img->size() != size) {
-          fail(path, fmt::format("camera {}: {} frame is {}x{}, the OLAT frames are {}x{}", cam.id, key, img->cols,
-                                 img->rows, ctx.width, ctx.height));
-          return cv::Mat();
-        }
         return std::move(img).value();
       };
 
       // Mask: file, else clean plate vs lit, else the whole frame.
       if (!cam.mask.empty()) {
         auto m = io::ReadImage(cam.mask);
-        if (!m.ok()) {
-          fail(cam.mask, fmt::format("camera {}: mask unreadable: {}", cam.id, m.status().message()));
-        } else if (m->size() != size) {
-          fail(cam.mask, fmt::format("camera {}: mask is {}x{}, the OLAT frames are {}x{}", cam.id, m->cols, m->rows,
-                                     ctx.width, ctx.height));
-        } else {
+        const bool ok = m.ok();
+        if (usable(cam.mask, "mask", m.status(), ok ? m->cols : 0, ok ? m->rows : 0)) {
           cv::Mat l = Luminance(*m);
           ctx.mask = l > 0.0f;
           cs.mask_source = "mask file";
@@ -551,13 +554,9 @@ io::Status ScanBegin(const io::Session& session, const CheckOptions& options, Ch
                                          std::pair<std::string, const char*>{cam.matte_pairs[k].frame, "frame"}}) {
           if (path.empty()) continue;
           auto info = io::ProbeImage(path);
-          if (!info.ok()) {
-            fail(path,
-                 fmt::format("camera {}: matte pair {} {} unreadable: {}", cam.id, k, what, info.status().message()));
-          } else if (info->width != ctx.width || info->height != ctx.height) {
-            fail(path, fmt::format("camera {}: matte pair {} {} is {}x{}, the OLAT frames are {}x{}", cam.id, k, what,
-                                   info->width, info->height, ctx.width, ctx.height));
-          }
+          const bool ok = info.ok();
+          usable(path, fmt::format("matte pair {} {}", k, what), info.status(), ok ? info->width : 0,
+                 ok ? info->height : 0);
         }
       }
       cv::Mat plate_lum = plate.empty() ? cv::Mat() : Luminance(plate);
