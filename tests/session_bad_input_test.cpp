@@ -259,6 +259,30 @@ TEST(SessionBadInput, TruncatedPngFoundByVerify) {
   EXPECT_NE(r.err.find("backlit.png: truncated or corrupt PNG data"), std::string::npos) << r.err;
 }
 
+// OpenEXR frames store half floats, and --verify decodes them as stored
+// (without widening to float): corrupt ZIP blocks must still be found.
+TEST(SessionBadInput, CorruptExrBlocksFoundByVerify) {
+  TempDir dir;
+  MakeSession(dir);
+  const std::string victim = dir / "cam00/olat_001.exr";
+  const auto size = static_cast<std::streamoff>(fs::file_size(victim));
+  {
+    // Overwrite a sixth from a third into the file (a middle block of pixels;
+    // the header and the offset table come first, and the header probe reads
+    // the last block) with a fixed byte pattern, keeping the size.
+    std::fstream f(victim, std::ios::in | std::ios::out | std::ios::binary);
+    f.seekp(size / 3);
+    const std::string junk(static_cast<size_t>(size / 6), '\xa5');
+    f.write(junk.data(), static_cast<std::streamsize>(junk.size()));
+  }
+  const auto probe = lumenrig::test::RunCli("info " + dir.path());
+  EXPECT_EQ(probe.exit_code, 0) << probe.out << probe.err;  // headers are intact
+  const auto r = lumenrig::test::RunCli("info --verify " + dir.path());
+  EXPECT_EQ(r.exit_code, 2) << r.out << r.err;
+  EXPECT_EQ(std::count(r.err.begin(), r.err.end(), '\n'), 1) << r.err;
+  EXPECT_NE(r.err.find("olat_001.exr"), std::string::npos) << r.err;
+}
+
 TEST(SessionBadInput, PngOfTheWrongSize) {
   TempDir dir;
   MakeSession(dir);
