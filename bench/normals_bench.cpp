@@ -36,7 +36,6 @@
 
 #include "lumenrig/capture_io/image_io.h"
 #include "lumenrig/capture_io/parallel.h"
-#include "lumenrig/capture_io/process_stats.h"
 #include "lumenrig/capture_io/session.h"
 #include "lumenrig/solvers/integration.h"
 #include "lumenrig/solvers/photometric_stereo.h"
@@ -332,7 +331,6 @@ int Integrate(const std::string& normals_path, const std::string& mask_path, int
 }  // namespace
 
 int main(int argc, char** argv) {
-  lumenrig::io::ReuseLargeBlocks();  // as the CLI does (cli/main.cpp)
   if (argc >= 5 && std::strcmp(argv[1], "--make-session") == 0)
     return MakeSession(argv[2], std::atoi(argv[3]), std::atoi(argv[4]));
   if (argc >= 5 && std::strcmp(argv[1], "--decode") == 0)

@@ -4,10 +4,6 @@
 
 #include <sys/resource.h>
 
-#if defined(__GLIBC__)
-#include <malloc.h>
-#endif
-
 namespace lumenrig::io {
 
 double ProcessCpuSeconds() {
@@ -23,15 +19,5 @@ int64_t PeakRssBytes() {
 }
 
 double PeakRssMib() { return static_cast<double>(PeakRssBytes()) / 1048576.0; }
-
-void ReuseLargeBlocks() {
-#if defined(__GLIBC__)
-  constexpr int kLimit = 1 << 30;
-  // Thread arenas other than the main one grow in 64 MiB heaps, so their
-  // larger blocks are still mapped afresh; the main arena serves the rest.
-  mallopt(M_MMAP_THRESHOLD, kLimit);
-  mallopt(M_TRIM_THRESHOLD, kLimit);
-#endif
-}
 
 }  // namespace lumenrig::io

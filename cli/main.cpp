@@ -70,7 +70,6 @@ void AskForHugePages(char** argv) {
 int main(int argc, char** argv) {
   using lumenrig::cli::Commands;
   lumenrig::cli::AskForHugePages(argv);
-  lumenrig::io::ReuseLargeBlocks();
   CLI::App app{
       "lumenrig: checks one-light-at-a-time (OLAT) dome captures and turns them into\n"
       "ground-truth maps and relit training data."};
