@@ -45,7 +45,7 @@ int Run(const MatteArgs& args) {
   solvers::MatteResult result;
   s = solvers::ComputeMatte(*session, args.camera, options, &result, args.threads);
   if (!s.ok()) return ReportError("matte", s);
-  s = solvers::WriteMatteOutputs(result, *session, args.out_dir, args.force);
+  s = solvers::WriteMatteOutputs(result, *session, args.out_dir, args.force, args.threads);
   if (!s.ok()) return ReportError("matte", s);
   if (!args.composite.empty()) {
     // New background: a dusk-blue to warm-grey gradient (linear RGB).

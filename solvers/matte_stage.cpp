@@ -5,6 +5,7 @@
 #include <algorithm>
 #include <cmath>
 #include <filesystem>
+#include <functional>
 
 #include <fmt/format.h>
 #include <opencv2/imgproc.hpp>
@@ -12,6 +13,7 @@
 #include "lumenrig/capture_io/atomic_file.h"
 #include "lumenrig/capture_io/color.h"
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/parallel.h"
 
 namespace lumenrig::solvers {
 
@@ -28,22 +30,43 @@ struct FrameLoader {
 
   std::string Key(const std::string& name) const { return fmt::format("cameras[{}].{}", camera_index, name); }
 
-  io::Status Load(const std::string& path, const std::string& key, cv::Mat* out) {
-    io::Expected<cv::Mat> image = io::ReadImage(path, decode);
-    if (!image.ok()) return image.status().WithPrefix(key);
+  struct Wanted {
+    std::string path, key;
+    cv::Mat* out;
+  };
+
+  /// Decodes every frame of `wanted` (a few at once), then checks them in
+  /// list order, so the error reported is the first in that order whatever
+  /// the scheduling. Frames come back with 3 channels and one size.
+  io::Status LoadAll(const std::vector<Wanted>& wanted, int threads) {
+    std::vector<io::Status> status(wanted.size());
+    io::ParallelFor(0, static_cast<int64_t>(wanted.size()), 1, threads, [&](int64_t b, int64_t e) {
+      for (int64_t i = b; i < e; ++i) status[static_cast<size_t>(i)] = Read(wanted[static_cast<size_t>(i)]);
+    });
+    for (size_t i = 0; i < wanted.size(); ++i) {
+      LUMENRIG_RETURN_IF_ERROR(status[i]);
+      const cv::Mat& m = *wanted[i].out;
+      if (size.area() == 0) {
+        size = m.size();
+        size_source = wanted[i].key;
+      } else if (m.size() != size) {
+        return io::Status::BadInput(fmt::format("{}: {}: size {}x{} differs from {} ({}x{})", wanted[i].path,
+                                                wanted[i].key, m.cols, m.rows, size_source, size.width, size.height));
+      }
+    }
+    return io::Status::Ok();
+  }
+
+  io::Status Read(const Wanted& w) const {
+    io::Expected<cv::Mat> image = io::ReadImage(w.path, decode);
+    if (!image.ok()) return image.status().WithPrefix(w.key);
     cv::Mat m = std::move(image).value();
     if (m.channels() == 1) cv::merge(std::vector<cv::Mat>{m, m, m}, m);
     if (m.channels() != 3) {
-      return io::Status::BadInput(fmt::format("{}: {}: expected 1 or 3 channels, found {}", path, key, m.channels()));
+      return io::Status::BadInput(
+          fmt::format("{}: {}: expected 1 or 3 channels, found {}", w.path, w.key, m.channels()));
     }
-    if (size.area() == 0) {
-      size = m.size();
-      size_source = key;
-    } else if (m.size() != size) {
-      return io::Status::BadInput(fmt::format("{}: {}: size {}x{} differs from {} ({}x{})", path, key, m.cols, m.rows,
-                                              size_source, size.width, size.height));
-    }
-    *out = std::move(m);
+    *w.out = std::move(m);
     return io::Status::Ok();
   }
 
@@ -194,17 +217,30 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
     if (method == MatteMethod::kDifference && cam.lit.empty()) return loader.Missing("lit", method);
   }
 
-  cv::Mat dark;
-  if (!cam.dark.empty()) {
-    LUMENRIG_RETURN_IF_ERROR(loader.Load(cam.dark, loader.Key("dark"), &dark));
-    result.inputs.push_back(loader.Key("dark"));
+  // Every frame the method reads, decoded a few at once; the dark frame is
+  // then subtracted from the others.
+  std::vector<FrameLoader::Wanted> wanted;
+  cv::Mat dark, plate, lit, backlit;
+  std::vector<cv::Mat> plates(cam.matte_pairs.size()), frames(cam.matte_pairs.size());
+  if (!cam.dark.empty()) wanted.push_back({cam.dark, loader.Key("dark"), &dark});
+  if (method == MatteMethod::kTriangulation) {
+    for (size_t k = 0; k < cam.matte_pairs.size(); ++k) {
+      const std::string key = fmt::format("{}[{}]", loader.Key("matte_pairs"), k);
+      wanted.push_back({cam.matte_pairs[k].plate, key + ".plate", &plates[k]});
+      wanted.push_back({cam.matte_pairs[k].frame, key + ".frame", &frames[k]});
+    }
+  } else {
+    wanted.push_back({cam.clean_plate, loader.Key("clean_plate"), &plate});
+    if (!cam.lit.empty()) wanted.push_back({cam.lit, loader.Key("lit"), &lit});
+    if (method == MatteMethod::kBacklit) wanted.push_back({cam.backlit, loader.Key("backlit"), &backlit});
   }
-  auto load = [&](const std::string& path, const std::string& key, cv::Mat* m) -> io::Status {
-    LUMENRIG_RETURN_IF_ERROR(loader.Load(path, key, m));
-    if (!dark.empty()) *m -= dark;
-    result.inputs.push_back(key);
-    return io::Status::Ok();
-  };
+  LUMENRIG_RETURN_IF_ERROR(loader.LoadAll(wanted, threads));
+  if (!dark.empty()) {
+    io::ParallelFor(1, static_cast<int64_t>(wanted.size()), 1, threads, [&](int64_t b, int64_t e) {
+      for (int64_t i = b; i < e; ++i) *wanted[static_cast<size_t>(i)].out -= dark;
+    });
+  }
+  for (const auto& w : wanted) result.inputs.push_back(w.key);
 
   cv::Mat user_trimap;
   auto load_user_trimap = [&]() -> io::Status {
@@ -215,25 +251,13 @@ io::Status ComputeMatte(const io::Session& session, const std::string& camera_id
   };
 
   if (method == MatteMethod::kTriangulation) {
-    std::vector<cv::Mat> plates(cam.matte_pairs.size()), frames(cam.matte_pairs.size());
-    for (size_t k = 0; k < cam.matte_pairs.size(); ++k) {
-      const std::string key = fmt::format("{}[{}]", loader.Key("matte_pairs"), k);
-      LUMENRIG_RETURN_IF_ERROR(load(cam.matte_pairs[k].plate, key + ".plate", &plates[k]));
-      LUMENRIG_RETURN_IF_ERROR(load(cam.matte_pairs[k].frame, key + ".frame", &frames[k]));
-    }
     LUMENRIG_RETURN_IF_ERROR(load_user_trimap());
     TriangulationOptions to = options.triangulation;
     to.noise_sigma = options.noise_sigma;
     LUMENRIG_RETURN_IF_ERROR(TriangulationMatte(plates, frames, to, &result.alpha, &result.foreground,
                                                 &result.confidence, &result.noise_sigma, threads));
   } else {
-    cv::Mat plate;
-    LUMENRIG_RETURN_IF_ERROR(load(cam.clean_plate, loader.Key("clean_plate"), &plate));
-    cv::Mat lit;
-    if (!cam.lit.empty()) LUMENRIG_RETURN_IF_ERROR(load(cam.lit, loader.Key("lit"), &lit));
     if (method == MatteMethod::kBacklit) {
-      cv::Mat backlit;
-      LUMENRIG_RETURN_IF_ERROR(load(cam.backlit, loader.Key("backlit"), &backlit));
       LUMENRIG_RETURN_IF_ERROR(load_user_trimap());
       BacklitOptions bo = options.backlit;
       bo.noise_sigma = options.noise_sigma;
@@ -300,7 +324,7 @@ std::vector<std::string> MatteOutputFiles(const MatteResult& result, const std::
 }
 
 io::Status WriteMatteOutputs(const MatteResult& result, const io::Session& session, const std::string& out_dir,
-                             bool force) {
+                             bool force, int threads) {
   const std::vector<std::string> files = MatteOutputFiles(result, out_dir);
   for (const std::string& f : files) LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath(f, force));
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(out_dir));
@@ -316,16 +340,41 @@ io::Status WriteMatteOutputs(const MatteResult& result, const io::Session& sessi
                     {"noise_sigma", fmt::format("{:.6g}", result.noise_sigma)}};
   io::ExrWriteOptions full = exr;
   full.pixel_type = io::PixelType::kFloat;
-  full.attributes["meaning"] = "alpha matte 0..1";
-  LUMENRIG_RETURN_IF_ERROR(io::WriteExr(out_dir + "/alpha.exr", result.alpha, full));
+  // One writer per file of MatteOutputFiles, in its order; the files are
+  // written a few at once, each to a temporary name renamed when complete.
+  std::vector<std::function<io::Status()>> writers;
+  writers.push_back([&] {
+    io::ExrWriteOptions a = full;
+    a.attributes["meaning"] = "alpha matte 0..1";
+    return io::WriteExr(out_dir + "/alpha.exr", result.alpha, a);
+  });
   if (!result.foreground.empty()) {
-    io::ExrWriteOptions fg = exr;
-    fg.attributes["meaning"] = "un-premultiplied foreground colour, linear RGB; 0 where alpha is 0";
-    LUMENRIG_RETURN_IF_ERROR(io::WriteExr(out_dir + "/foreground.exr", result.foreground, fg));
+    writers.push_back([&] {
+      io::ExrWriteOptions fg = exr;
+      fg.attributes["meaning"] = "un-premultiplied foreground colour, linear RGB; 0 where alpha is 0";
+      return io::WriteExr(out_dir + "/foreground.exr", result.foreground, fg);
+    });
   }
-  LUMENRIG_RETURN_IF_ERROR(io::WritePng(out_dir + "/trimap.png", result.trimap, force));
-  full.attributes["meaning"] = "matte confidence 0..1, 0 where the solve failed";
-  return io::WriteExr(out_dir + "/confidence.exr", result.confidence, full);
+  writers.push_back([&] { return io::WritePng(out_dir + "/trimap.png", result.trimap, force); });
+  writers.push_back([&] {
+    io::ExrWriteOptions c = full;
+    c.attributes["meaning"] = "matte confidence 0..1, 0 where the solve failed";
+    return io::WriteExr(out_dir + "/confidence.exr", result.confidence, c);
+  });
+  std::vector<io::Status> status(writers.size());
+  io::ParallelFor(0, static_cast<int64_t>(writers.size()), 1, threads, [&](int64_t b, int64_t e) {
+    for (int64_t i = b; i < e; ++i) status[static_cast<size_t>(i)] = writers[static_cast<size_t>(i)]();
+  });
+  for (size_t i = 0; i < status.size(); ++i) {
+    if (status[i].ok()) continue;
+    // No partial set: remove what this call wrote, report the first failure.
+    for (size_t j = 0; j < status.size(); ++j) {
+      std::error_code ec;
+      if (status[j].ok()) fs::remove(files[j], ec);
+    }
+    return status[i];
+  }
+  return io::Status::Ok();
 }
 
 cv::Mat GradientBackground(cv::Size size, const cv::Vec3f& top_rgb, const cv::Vec3f& bottom_rgb) {

@@ -363,7 +363,7 @@ io::Status RunMatte(const StageUnitContext& ctx, std::vector<std::string>* outpu
   LUMENRIG_RETURN_IF_ERROR(solvers::ComputeMatte(*ctx.session, ctx.camera->id, options, &result, ctx.threads));
   const std::string dir = Join(ctx.unit_dir, "matte");
   LUMENRIG_RETURN_IF_ERROR(io::EnsureDirectory(dir));
-  LUMENRIG_RETURN_IF_ERROR(solvers::WriteMatteOutputs(result, *ctx.session, dir, /*force=*/true));
+  LUMENRIG_RETURN_IF_ERROR(solvers::WriteMatteOutputs(result, *ctx.session, dir, /*force=*/true, ctx.threads));
   for (const auto& f : solvers::MatteOutputFiles(result, dir)) outputs->push_back(f);
   (*extra)["method"] = solvers::MatteMethodName(result.method);
   return io::Status::Ok();

@@ -8,6 +8,8 @@
 #include <opencv2/imgcodecs.hpp>
 
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/capture_io/session.h"
+#include "lumenrig/solvers/matte_stage.h"
 #include "lumenrig/solvers/matting.h"
 #include "matting_scene.h"
 #include "test_support.h"
@@ -123,6 +125,28 @@ TEST(MatteCli, MissingKeyIsNamedAndNothingIsWritten) {
   r = RunCli("matte " + dir.path() + " --out " + out + " --camera cam09");
   EXPECT_EQ(r.exit_code, 2);
   EXPECT_NE(r.err.find("no camera with id \"cam09\""), std::string::npos) << r.err;
+}
+
+// The outputs are written concurrently; when one of them cannot be written,
+// the ones this call did write are removed (never a partial set).
+TEST(MatteCli, AFailedOutputLeavesNoPartialSet) {
+  const Scene s = MakeScene(kSize);
+  TempDir dir;
+  WriteSession(dir, s);
+  auto session = io::LoadSession(dir.path());
+  ASSERT_TRUE(session.ok()) << session.status().message();
+  solvers::MatteResult result;
+  ASSERT_TRUE(solvers::ComputeMatte(*session, "", solvers::MatteOptions{}, &result, 2).ok());
+  const std::string out = dir / "out";
+  ASSERT_TRUE(solvers::WriteMatteOutputs(result, *session, out, false, 2).ok());
+  for (const auto& f : solvers::MatteOutputFiles(result, out)) EXPECT_TRUE(fs::exists(f)) << f;
+  // An 8-bit trimap that is empty cannot be written as PNG.
+  result.trimap = cv::Mat();
+  const std::string out2 = dir / "out2";
+  const io::Status st = solvers::WriteMatteOutputs(result, *session, out2, false, 2);
+  EXPECT_FALSE(st.ok());
+  EXPECT_NE(st.message().find("trimap.png"), std::string::npos) << st.message();
+  for (const auto& f : solvers::MatteOutputFiles(result, out2)) EXPECT_FALSE(fs::exists(f)) << f;
 }
 
 TEST(MatteCli, MismatchedSizesAndWrongTrimapAreBadInput) {

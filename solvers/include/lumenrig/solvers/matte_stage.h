@@ -79,9 +79,11 @@ std::vector<std::string> MatteOutputFiles(const MatteResult& result, const std::
 /// empty), trimap.png (8-bit) and confidence.exr (float, Y) atomically, with
 /// provenance header attributes (tool, version, session, camera, method,
 /// options). Refuses to overwrite any existing one unless `force`; checks all
-/// paths before writing the first file.
+/// paths before writing the first file. The files are written concurrently
+/// on up to `threads` threads (0 = all cores); when one fails, the others this
+/// call wrote are removed and the first failure in file order is returned.
 io::Status WriteMatteOutputs(const MatteResult& result, const io::Session& session, const std::string& out_dir,
-                             bool force);
+                             bool force, int threads = 0);
 
 /// A vertical two-colour gradient background (linear RGB, CV_32FC3), e.g. for
 /// the demo composite.
