@@ -106,9 +106,10 @@ int RunDemo(const DemoArgs& a) {
   s = synth::PlanRun(run, &plan);
   if (!s.ok()) return ReportError("demo", s);
   synth::RunEvents events;
-  events.unit_finished = [](const synth::UnitPlan& u, const io::Status& st, double wall) {
-    fmt::print("demo: {:<9} {:<6} {} ({:.1f} s)\n", synth::StageName(u.stage), u.camera_id.empty() ? "-" : u.camera_id,
-               st.ok() ? "done" : "FAILED: " + st.message(), wall);
+  events.unit_finished = [](const synth::UnitPlan& u, const io::Status& st, const synth::UnitDone& d) {
+    fmt::print("demo: {:<9} {:<6} {} ({:.1f} s{})\n", synth::StageName(u.stage),
+               u.camera_id.empty() ? "-" : u.camera_id, st.ok() ? "done" : "FAILED: " + st.message(), d.wall_s,
+               d.note.empty() ? "" : ", " + d.note);
   };
   synth::RunReport report;
   s = synth::ExecuteRun(run, &plan, events, &report);

@@ -1,6 +1,8 @@
 // `lumenrig run`: the whole pipeline for one or more sessions.
+#include <algorithm>
 #include <chrono>
 #include <cstdio>
+#include <map>
 #include <mutex>
 
 #include <tbb/global_control.h>
@@ -51,15 +53,23 @@ io::Status ParseStages(const std::string& text, std::vector<synth::StageKind>* o
   return io::Status::Ok();
 }
 
-/// One status line on a terminal, plain log lines otherwise.
+/// One status line on a terminal, plain log lines otherwise. The overall
+/// fraction and the ETA weigh the units by their expected work
+/// (synth::UnitWeights), counting the fraction done of every unit in flight.
 class ProgressDisplay {
  public:
-  ProgressDisplay(int total_units, bool tty) : total_(total_units), tty_(tty), start_(Clock::now()) {}
+  ProgressDisplay(const synth::RunPlan& plan, bool tty)
+      : plan_(plan), weights_(synth::UnitWeights(plan)), tty_(tty), start_(Clock::now()) {
+    for (const auto& u : plan.units)
+      total_ += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
+    for (double w : weights_) total_weight_ += w;
+  }
 
   void Started(const synth::UnitPlan& u) {
     std::lock_guard<std::mutex> lock(mutex_);
     current_ = Label(u);
     fraction_ = 0;
+    in_flight_[Index(u)] = 0;
     if (!tty_) fmt::print(stderr, "lumenrig run: start {}\n", current_);
     Draw();
   }
@@ -67,15 +77,19 @@ class ProgressDisplay {
     std::lock_guard<std::mutex> lock(mutex_);
     current_ = Label(u);
     fraction_ = f;
+    in_flight_[Index(u)] = std::clamp(f, 0.0, 1.0);
     Draw();
   }
-  void Finished(const synth::UnitPlan& u, const io::Status& s, double wall) {
+  void Finished(const synth::UnitPlan& u, const io::Status& s, const synth::UnitDone& d) {
     std::lock_guard<std::mutex> lock(mutex_);
     ++done_;
     fraction_ = 0;
+    in_flight_.erase(Index(u));
+    done_weight_ += weights_[Index(u)];
     if (tty_) fmt::print(stderr, "\r\033[K");
     if (s.ok()) {
-      fmt::print(stderr, "lumenrig run: done  {} in {:.1f} s\n", Label(u), wall);
+      fmt::print(stderr, "lumenrig run: done  {} in {:.1f} s{}\n", Label(u), d.wall_s,
+                 d.note.empty() ? "" : " (" + d.note + ")");
     } else {
       fmt::print(stderr, "lumenrig run: FAILED {}: {}\n", Label(u), s.message());
     }
@@ -84,6 +98,8 @@ class ProgressDisplay {
   void Close() {
     if (tty_) fmt::print(stderr, "\r\033[K");
   }
+  /// Units planned to run (missing or stale).
+  int total() const { return total_; }
 
  private:
   using Clock = std::chrono::steady_clock;
@@ -91,24 +107,33 @@ class ProgressDisplay {
     return fmt::format("{} {}{}", u.session_id, u.camera_id.empty() ? "" : u.camera_id + " ",
                        synth::StageName(u.stage));
   }
+  size_t Index(const synth::UnitPlan& u) const { return static_cast<size_t>(&u - plan_.units.data()); }
   void Draw() {
     if (!tty_) return;
     const double elapsed = std::chrono::duration<double>(Clock::now() - start_).count();
-    const double progress = (done_ + fraction_) / std::max(1, total_);
-    const double rate = elapsed > 0 ? (done_ + fraction_) / elapsed * 60.0 : 0.0;
+    double weight = done_weight_;
+    for (const auto& [k, f] : in_flight_) weight += f * weights_[k];
+    const double progress = total_weight_ > 0 ? weight / total_weight_ : 0.0;
+    // Rate: work per second in frame-decode equivalents (the weights' unit).
+    const double rate = elapsed > 0 ? weight / elapsed : 0.0;
     std::string eta = "--:--";
     if (progress > 0.01) {
       const int s = static_cast<int>(elapsed / progress - elapsed);
-      eta = fmt::format("{:02d}:{:02d}", s / 60, s % 60);
+      eta = s >= 3600 ? fmt::format("{}:{:02d}:{:02d}", s / 3600, s / 60 % 60, s % 60)
+                      : fmt::format("{:02d}:{:02d}", s / 60, s % 60);
     }
     const int width = 24;
-    const int filled = static_cast<int>(progress * width);
-    fmt::print(stderr, "\r\033[K[{}{}] {}/{} units {:.1f}/min ETA {} | {} {:.0f}%", std::string(filled, '#'),
+    const int filled = std::clamp(static_cast<int>(progress * width), 0, width);
+    fmt::print(stderr, "\r\033[K[{}{}] {}/{} units {:.0f} frames/s ETA {} | {} {:.0f}%", std::string(filled, '#'),
                std::string(width - filled, '.'), done_, total_, rate, eta, current_, fraction_ * 100);
     std::fflush(stderr);
   }
   std::mutex mutex_;
-  int total_;
+  const synth::RunPlan& plan_;
+  std::vector<double> weights_;
+  std::map<size_t, double> in_flight_;  // unit index -> fraction done
+  double total_weight_ = 0, done_weight_ = 0;
+  int total_ = 0;
   int done_ = 0;
   bool tty_;
   double fraction_ = 0;
@@ -210,15 +235,13 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
       for (const auto& line : plan.Describe()) fmt::print("{}\n", line);
       return 0;
     }
-    int to_run = 0;
-    for (const auto& u : plan.units)
-      to_run += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
-    ProgressDisplay display(to_run, StderrIsTerminal());
+    ProgressDisplay display(plan, StderrIsTerminal());
+    const int to_run = display.total();
     synth::RunEvents events;
     events.unit_started = [&](const synth::UnitPlan& u) { display.Started(u); };
     events.unit_progress = [&](const synth::UnitPlan& u, double f) { display.Progress(u, f); };
-    events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, double w) {
-      display.Finished(u, st, w);
+    events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, const synth::UnitDone& d) {
+      display.Finished(u, st, d);
     };
     synth::RunReport report;
     s = synth::ExecuteRun(o, &plan, events, &report);

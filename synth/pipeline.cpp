@@ -96,6 +96,47 @@ std::string NowUtc() {
 
 }  // namespace
 
+std::vector<double> UnitWeights(const RunPlan& plan) {
+  constexpr double kSolvePerOlatFrame = 0.5, kMatte = 65, kAssemblePerCamera = 30;
+  auto due = [](const UnitPlan& u) { return u.state == UnitState::kMissing || u.state == UnitState::kStale; };
+  auto frames = [](const io::Camera& c) {
+    double n = static_cast<double>(c.olat.size() + c.tracking.size() + 2 * c.matte_pairs.size());
+    for (const std::string* f : {&c.dark, &c.clean_plate, &c.backlit, &c.lit}) n += f->empty() ? 0 : 1;
+    return n;
+  };
+  std::vector<double> w(plan.units.size(), 0.0);
+  std::vector<int> check_of(plan.sessions.size(), -1);  // a due check unit per session
+  for (size_t k = 0; k < plan.units.size(); ++k)
+    if (plan.units[k].stage == StageKind::kCheck && due(plan.units[k]))
+      check_of[static_cast<size_t>(plan.units[k].session_index)] = static_cast<int>(k);
+  for (size_t k = 0; k < plan.units.size(); ++k) {
+    const UnitPlan& u = plan.units[k];
+    if (!due(u)) continue;
+    const io::Session& s = plan.sessions[static_cast<size_t>(u.session_index)];
+    const io::Camera* cam = u.camera_id.empty() ? nullptr : s.FindCamera(u.camera_id);
+    switch (u.stage) {
+      case StageKind::kCheck:
+        for (const auto& c : s.cameras) w[k] += frames(c);
+        break;
+      case StageKind::kNormals: {
+        const double olat = cam ? static_cast<double>(cam->olat.size()) : 0.0;
+        const int check = check_of[static_cast<size_t>(u.session_index)];
+        if (check >= 0)
+          w[static_cast<size_t>(check)] += kSolvePerOlatFrame * olat;  // solved in the check's pass
+        else
+          w[k] = (1.0 + kSolvePerOlatFrame) * olat;
+        break;
+      }
+      case StageKind::kMatte: w[k] = kMatte; break;
+      case StageKind::kAssemble: w[k] = kAssemblePerCamera * static_cast<double>(s.cameras.size()); break;
+      case StageKind::kPairs:
+        for (const auto& c : s.cameras) w[k] += static_cast<double>(c.olat.size());
+        break;
+    }
+  }
+  return w;
+}
+
 std::vector<std::string> RunPlan::Describe() const {
   std::vector<std::string> lines;
   for (const auto& u : units) {
@@ -461,14 +502,23 @@ struct Executor {
     if (status.ok()) status = WriteStamp(unit, session, outputs, extra);
     double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
     double cpu = io::ProcessCpuSeconds() - cpu0;
+    UnitDone done;
+    if (is_prefilled) {
+      done.wall_s = prefilled.wall_s;
+      done.note = "solved in the session check's read of the OLAT frames";
+    }
     {
       std::lock_guard<std::mutex> lock(mutex);
       // The fused solves' time counts for the normals stage, not the check.
+      double fused_wall = 0;
+      std::vector<std::string> fused_cameras;
       for (size_t f = 0; f < fuse.size(); ++f) {
         internal::FusedNormalsUnit& fu = fuse[f];
         const int k = fuse_index[f];
         wall -= fu.wall_s;
         cpu -= fu.cpu_s;
+        fused_wall += fu.wall_s;
+        if (fu.done) fused_cameras.push_back(fu.camera->id);
         StageStats& ns = StatsFor(StageKind::kNormals);
         ns.wall_s += fu.wall_s;
         ns.cpu_s += fu.cpu_s;
@@ -480,8 +530,12 @@ struct Executor {
       st.cpu_s += cpu;
       st.peak_rss_bytes = io::PeakRssBytes();
       if (!status.ok() && first_error.ok()) first_error = status;
+      if (!is_prefilled) done.wall_s = wall;
+      if (!fused_cameras.empty())
+        done.note = fmt::format("plus {:.1f} s solving the normals of {} in the same read of the OLAT frames",
+                                fused_wall, fmt::join(fused_cameras, ", "));
     }
-    if (events->unit_finished) events->unit_finished(unit, status, wall);
+    if (events->unit_finished) events->unit_finished(unit, status, done);
     internal::MaybeKillAt(fmt::format("after:{}:{}:{}", StageName(unit.stage), unit.session_id, unit.camera_id));
     if (status.ok() && a->blocks_downstream && a->blocks_downstream(extra)) {
       BlockSession(u);

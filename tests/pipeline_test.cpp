@@ -11,6 +11,7 @@
 #include <nlohmann/json.hpp>
 
 #include "lumenrig/capture_io/image_io.h"
+#include "lumenrig/synth/pipeline.h"
 #include "test_support.h"
 
 namespace fs = std::filesystem;
@@ -84,6 +85,14 @@ TEST_F(PipelineTest, RunsEndToEndAndH5pyOutputsMatchStageExrs) {
     EXPECT_NE(r.out.find(std::string(id) + ".h5"), std::string::npos) << "output paths are printed";
   }
   EXPECT_NE(r.out.find("stage"), std::string::npos) << "--stats table";
+  // Log lines (stderr is not a terminal here): the normals are solved in the
+  // session check's one read of the OLAT frames, and the lines say so rather
+  // than give the normals units only their bookkeeping time.
+  EXPECT_NE(r.err.find("check in "), std::string::npos) << r.err;
+  EXPECT_NE(r.err.find("solving the normals of cam00, cam01 in the same read of the OLAT frames"), std::string::npos)
+      << r.err;
+  EXPECT_NE(r.err.find("cam01 normals in "), std::string::npos) << r.err;
+  EXPECT_NE(r.err.find("(solved in the session check's read of the OLAT frames)"), std::string::npos) << r.err;
   // HDF5 used from worker threads must not print at exit ("infinite loop
   // closing library") or leak its error stacks to the terminal.
   EXPECT_EQ(r.err.find("HDF5"), std::string::npos) << r.err;
@@ -268,3 +277,47 @@ TEST_F(PipelineTest, MpiRanksShareTheSessionsWithIdenticalResults) {
 }
 
 }  // namespace
+
+// The progress display's ETA weighs units by expected work (UnitWeights):
+// a due check carries the normals it solves in its pass; a normals unit run
+// on its own (its check up to date) carries its decode and solve; units that
+// will not run weigh nothing.
+TEST(RunProgress, UnitWeightsFollowWhereTheWorkRuns) {
+  using namespace lumenrig::synth;
+  RunPlan plan;
+  lumenrig::io::Session s;
+  for (const char* id : {"cam00", "cam01"}) {
+    lumenrig::io::Camera c;
+    c.id = id;
+    c.olat.resize(10);
+    c.dark = "dark.exr";
+    c.clean_plate = "plate.exr";
+    s.cameras.push_back(c);
+  }
+  plan.sessions.push_back(s);
+  auto unit = [&](StageKind k, const std::string& cam, UnitState st) {
+    UnitPlan u;
+    u.session_index = 0;
+    u.camera_id = cam;
+    u.stage = k;
+    u.state = st;
+    plan.units.push_back(u);
+  };
+  unit(StageKind::kCheck, "", UnitState::kMissing);
+  unit(StageKind::kNormals, "cam00", UnitState::kMissing);
+  unit(StageKind::kNormals, "cam01", UnitState::kStale);
+  unit(StageKind::kMatte, "cam00", UnitState::kUpToDate);
+  unit(StageKind::kAssemble, "", UnitState::kMissing);
+  std::vector<double> w = UnitWeights(plan);
+  ASSERT_EQ(w.size(), 5u);
+  EXPECT_DOUBLE_EQ(w[0], 2 * 12 + 2 * 0.5 * 10);  // every frame once + both solves
+  EXPECT_DOUBLE_EQ(w[1], 0.0);                    // solved inside the check
+  EXPECT_DOUBLE_EQ(w[2], 0.0);
+  EXPECT_DOUBLE_EQ(w[3], 0.0);  // up to date: not run
+  EXPECT_DOUBLE_EQ(w[4], 2 * 30.0);
+  plan.units[0].state = UnitState::kUpToDate;  // normals alone read their frames
+  w = UnitWeights(plan);
+  EXPECT_DOUBLE_EQ(w[0], 0.0);
+  EXPECT_DOUBLE_EQ(w[1], 1.5 * 10);
+  EXPECT_DOUBLE_EQ(w[2], 1.5 * 10);
+}

@@ -97,13 +97,35 @@ struct RunReport {
   int64_t peak_rss_bytes = 0;
 };
 
+/// How a unit ended, for log lines. A session's check reads every OLAT frame
+/// once and solves the session's due normals in the same pass, so its time
+/// and theirs are reported apart.
+struct UnitDone {
+  /// Wall time of the unit's own work: for a check, without the normals it
+  /// solved; for a normals unit solved in its check, its share of that pass.
+  double wall_s = 0;
+  /// What else the time covers or where the work ran; empty when nothing.
+  std::string note;
+};
+
 /// Progress events for a terminal display or log lines.
 struct RunEvents {
   std::function<void(const UnitPlan&)> unit_started;
-  std::function<void(const UnitPlan&, const io::Status&, double wall_s)> unit_finished;
+  std::function<void(const UnitPlan&, const io::Status&, const UnitDone&)> unit_finished;
   /// fraction in [0,1] of the current unit (stages that report it)
   std::function<void(const UnitPlan&, double fraction)> unit_progress;
 };
+
+/// Expected work of each unit of `plan` (0 for units that will not run), in
+/// frame decodes, for the progress display's ETA: units differ in cost by
+/// two orders of magnitude, so counting them alike misleads. A due session
+/// check decodes every frame of the session once and, when its normals are
+/// due too, solves them in the same pass (their own units then only record
+/// it). Rough costs relative to a decode (common practice for an ETA; from
+/// `run --stats` on a 2048x2048 two-camera session, docs/pipeline.md):
+/// solving the normals half a decode per OLAT frame, a matte about 65
+/// frames, assembling 30 frames per camera, the pairs one per OLAT frame.
+std::vector<double> UnitWeights(const RunPlan& plan);
 
 /// Loads the sessions, computes every unit's key and state. Bad sessions or
 /// options are a BadInput naming the file.
