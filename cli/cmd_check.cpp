@@ -16,6 +16,7 @@ namespace {
 
 struct CheckArgs {
   std::string session;
+  std::string out_dir;
   std::string json_path;
   std::string report_dir;
   std::vector<std::string> thresholds;
@@ -44,9 +45,14 @@ int ListThresholds() {
   return 0;
 }
 
-int Run(const CheckArgs& args) {
+int Run(CheckArgs args) {
   const auto start = std::chrono::steady_clock::now();
   if (args.list) return ListThresholds();
+  // --out DIR: both outputs into one folder, as the other commands do.
+  if (!args.out_dir.empty()) {
+    if (args.json_path.empty()) args.json_path = (std::filesystem::path(args.out_dir) / "check.json").string();
+    if (args.report_dir.empty()) args.report_dir = args.out_dir;
+  }
   if (args.session.empty()) return ReportError("check", io::Status::BadInput("SESSION is required"));
 
   solvers::CheckOptions options;
@@ -113,9 +119,11 @@ int Run(const CheckArgs& args) {
     }
   }
 
-  if (!args.json_path.empty())
+  if (!args.json_path.empty()) {
     if (auto st = solvers::WriteCheckJson(result, args.json_path, args.force); !st.ok())
       return ReportError("check", st);
+    fmt::print("json: {}\n", args.json_path);
+  }
   if (!args.report_dir.empty()) {
     std::string written;
     if (auto st = solvers::WriteCheckReport(result, args.report_dir, args.force, &written); !st.ok())
@@ -140,6 +148,8 @@ int Run(const CheckArgs& args) {
 std::function<int()> Setup(CLI::App* sub) {
   auto args = std::make_shared<CheckArgs>();
   sub->add_option("session", args->session, "Session folder or its session.json");
+  sub->add_option("--out", args->out_dir,
+                  "Write DIR/check.json and DIR/check_report.html (unless --json / --report say otherwise)");
   sub->add_option("--json", args->json_path,
                   "Write every check, value, threshold, verdict and offending frame as JSON");
   sub->add_option("--report", args->report_dir, "Write a self-contained HTML report DIR/check_report.html");
@@ -150,7 +160,7 @@ std::function<int()> Setup(CLI::App* sub) {
   sub->add_option("--threads", args->threads, "Worker threads (0 = all cores)")->check(CLI::NonNegativeNumber);
   sub->add_option("--max-findings", args->max_findings, "Findings printed per check on the terminal")
       ->check(CLI::NonNegativeNumber);
-  sub->add_flag("--force", args->force, "Overwrite existing --json / --report outputs");
+  sub->add_flag("--force", args->force, "Overwrite existing --out / --json / --report outputs");
   sub->footer("Exit code: 0 pass (warnings allowed), 1 a check failed, 2 bad input.");
   return [args] { return Run(*args); };
 }

@@ -521,6 +521,17 @@ TEST(SessionCheck, CliExitCodesAndJson) {
   EXPECT_EQ(r.exit_code, 2);
   r = test::RunCli("check " + tmp / "clean" + " --json " + tmp / "clean.json --force");
   EXPECT_EQ(r.exit_code, 0);
+  // --out DIR: the JSON and the report in one folder (created), refused
+  // when they exist, and named on the terminal.
+  r = test::RunCli("check " + tmp / "clean" + " --out " + tmp / "qa");
+  EXPECT_EQ(r.exit_code, 0) << r.out << r.err;
+  EXPECT_TRUE(fs::exists(tmp / "qa/check.json"));
+  EXPECT_TRUE(fs::exists(tmp / "qa/check_report.html"));
+  EXPECT_NE(r.out.find("json: " + tmp / "qa/check.json"), std::string::npos) << r.out;
+  EXPECT_NE(r.out.find("report: "), std::string::npos) << r.out;
+  r = test::RunCli("check " + tmp / "clean" + " --out " + tmp / "qa");
+  EXPECT_EQ(r.exit_code, 2);
+  EXPECT_NE(r.err.find("check.json"), std::string::npos) << r.err;
 }
 
 // ---------------------------------------------------------------------------
