@@ -254,7 +254,13 @@ Expected<Session> LoadSession(const std::string& session_path_or_dir, const Load
   if (fs::is_directory(path, ec)) path /= "session.json";
   path = fs::absolute(path, ec).lexically_normal();
   auto parsed = ReadJsonFile(path.string());
-  if (!parsed.ok()) return parsed.status();
+  if (!parsed.ok()) {
+    // A frame or another file given where the session goes.
+    if (fs::is_regular_file(path, ec) && path.extension() != ".json")
+      return Status::BadInput(
+          fmt::format("{}: not a session (expected a session folder or its session.json)", path.string()));
+    return parsed.status();
+  }
   const json& j = *parsed;
   JsonContext ctx(path.string());
   if (!j.is_object()) return ctx.Error("", "expected a JSON object at the top level");

@@ -54,13 +54,16 @@ int Run(const InspectArgs& a) {
   }
   fmt::print("fields:\n");
   uint64_t samples = 0;
+  size_t name_width = 0;
+  for (const auto& d : *list) name_width = std::max(name_width, d.name.size());
   for (const auto& d : *list) {
     auto enc = (*r)->StringAttribute(d.name, "encoding");
-    fmt::print("  {:<28} {:<8} [{}]  chunk [{}]{}{}{}\n", d.name, d.type, Join(d.shape), Join(d.chunk),
+    fmt::print("  {:<{}} {:<8} [{}]  chunk [{}]{}{}{}\n", d.name, name_width, d.type, Join(d.shape), Join(d.chunk),
                d.gzip ? " gzip" : "", d.shuffle ? "+shuffle" : "", enc.ok() ? "  encoding " + *enc : "");
-    if (!d.shape.empty()) samples = std::max<uint64_t>(samples, d.shape[0]);
+    if (!d.shape.empty() && d.name.rfind("/pairs/", 0) == 0) samples = std::max<uint64_t>(samples, d.shape[0]);
   }
-  fmt::print("samples: {}\n", samples);
+  // Training pairs: one sample per row of the /pairs datasets.
+  if (samples > 0) fmt::print("samples: {}\n", samples);
   std::map<std::string, std::map<std::string, int64_t>> per_split;  // split -> subject -> count
   std::vector<std::string> splits, subjects;
   if ((*r)->ReadStrings("/pairs/split", 0, samples, &splits).ok() &&

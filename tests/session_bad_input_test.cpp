@@ -229,6 +229,18 @@ TEST(SessionBadInput, SessionFileNotFound) {
   EXPECT_NE(r.err.find("nowhere/session.json: file not found"), std::string::npos) << r.err;
 }
 
+// A frame passed where the session goes: the message says what is expected.
+TEST(SessionBadInput, AFramePassedAsTheSession) {
+  TempDir dir;
+  MakeSession(dir);
+  const auto r = lumenrig::test::RunCli("info " + (dir / "cam00/olat_000.exr"));
+  EXPECT_EQ(r.exit_code, 2);
+  EXPECT_EQ(std::count(r.err.begin(), r.err.end(), '\n'), 1) << r.err;
+  EXPECT_NE(r.err.find("olat_000.exr: not a session (expected a session folder or its session.json)"),
+            std::string::npos)
+      << r.err;
+}
+
 TEST(SessionBadInput, TruncatedExr) {
   TempDir dir;
   MakeSession(dir);
