@@ -4,6 +4,7 @@
 #include <cstdio>
 #include <map>
 #include <mutex>
+#include <set>
 
 #include <tbb/global_control.h>
 #ifdef LUMENRIG_WITH_MPI
@@ -65,17 +66,18 @@ class ProgressDisplay {
     for (double w : weights_) total_weight_ += w;
   }
 
-  void Started(const synth::UnitPlan& u) {
+  void Started(const synth::UnitPlan& u, const std::string& note) {
     std::lock_guard<std::mutex> lock(mutex_);
-    current_ = Label(u);
+    if (!note.empty()) with_normals_.insert(Index(u));
+    current_ = Current(u);
     fraction_ = 0;
     in_flight_[Index(u)] = 0;
-    if (!tty_) fmt::print(stderr, "lumenrig run: start {}\n", current_);
+    if (!tty_) fmt::print(stderr, "lumenrig run: start {}{}\n", Label(u), note.empty() ? "" : " (" + note + ")");
     Draw();
   }
   void Progress(const synth::UnitPlan& u, double f) {
     std::lock_guard<std::mutex> lock(mutex_);
-    current_ = Label(u);
+    current_ = Current(u);
     fraction_ = f;
     in_flight_[Index(u)] = std::clamp(f, 0.0, 1.0);
     Draw();
@@ -108,6 +110,10 @@ class ProgressDisplay {
                        synth::StageName(u.stage));
   }
   size_t Index(const synth::UnitPlan& u) const { return static_cast<size_t>(&u - plan_.units.data()); }
+  /// The status line's name of the unit in flight.
+  std::string Current(const synth::UnitPlan& u) const {
+    return with_normals_.count(Index(u)) ? Label(u) + " + normals" : Label(u);
+  }
   void Draw() {
     if (!tty_) return;
     const double elapsed = std::chrono::duration<double>(Clock::now() - start_).count();
@@ -132,6 +138,7 @@ class ProgressDisplay {
   const synth::RunPlan& plan_;
   std::vector<double> weights_;
   std::map<size_t, double> in_flight_;  // unit index -> fraction done
+  std::set<size_t> with_normals_;       // check units solving their session's normals
   double total_weight_ = 0, done_weight_ = 0;
   int total_ = 0;
   int done_ = 0;
@@ -238,7 +245,7 @@ int RunCommand(RunArgs* args, const MpiShard& shard) {
     ProgressDisplay display(plan, StderrIsTerminal());
     const int to_run = display.total();
     synth::RunEvents events;
-    events.unit_started = [&](const synth::UnitPlan& u) { display.Started(u); };
+    events.unit_started = [&](const synth::UnitPlan& u, const std::string& note) { display.Started(u, note); };
     events.unit_progress = [&](const synth::UnitPlan& u, double f) { display.Progress(u, f); };
     events.unit_finished = [&](const synth::UnitPlan& u, const io::Status& st, const synth::UnitDone& d) {
       display.Finished(u, st, d);

@@ -452,7 +452,6 @@ struct Executor {
     ctx.mem_budget_bytes = unit_budget;
     ctx.unit_key = unit.key;
     if (events->unit_progress) ctx.progress = [this, &unit](double f) { events->unit_progress(unit, f); };
-    if (events->unit_started) events->unit_started(unit);
 
     // A check unit solves the session's due normals units in its reading pass.
     std::vector<internal::FusedNormalsUnit> fuse;
@@ -470,6 +469,14 @@ struct Executor {
         }
       }
       if (!fuse.empty()) ctx.fused_normals = &fuse;
+    }
+    if (events->unit_started) {
+      std::vector<std::string> cameras;
+      for (const auto& f : fuse) cameras.push_back(f.camera->id);
+      events->unit_started(unit, cameras.empty() ? std::string()
+                                                 : fmt::format("with the normals of {} in the same read of the "
+                                                               "OLAT frames",
+                                                               fmt::join(cameras, ", ")));
     }
     // A normals unit already solved by its session's check only records it.
     internal::FusedNormalsUnit prefilled;

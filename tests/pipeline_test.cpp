@@ -88,6 +88,9 @@ TEST_F(PipelineTest, RunsEndToEndAndH5pyOutputsMatchStageExrs) {
   // Log lines (stderr is not a terminal here): the normals are solved in the
   // session check's one read of the OLAT frames, and the lines say so rather
   // than give the normals units only their bookkeeping time.
+  EXPECT_NE(r.err.find("check (with the normals of cam00, cam01 in the same read of the OLAT frames)"),
+            std::string::npos)
+      << r.err;
   EXPECT_NE(r.err.find("check in "), std::string::npos) << r.err;
   EXPECT_NE(r.err.find("solving the normals of cam00, cam01 in the same read of the OLAT frames"), std::string::npos)
       << r.err;

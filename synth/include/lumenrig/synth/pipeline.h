@@ -110,7 +110,8 @@ struct UnitDone {
 
 /// Progress events for a terminal display or log lines.
 struct RunEvents {
-  std::function<void(const UnitPlan&)> unit_started;
+  /// `note`: what else the unit does (a check solving normals), or empty.
+  std::function<void(const UnitPlan&, const std::string& note)> unit_started;
   std::function<void(const UnitPlan&, const io::Status&, const UnitDone&)> unit_finished;
   /// fraction in [0,1] of the current unit (stages that report it)
   std::function<void(const UnitPlan&, double fraction)> unit_progress;
