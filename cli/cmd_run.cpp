@@ -61,8 +61,7 @@ class ProgressDisplay {
  public:
   ProgressDisplay(const synth::RunPlan& plan, bool tty)
       : plan_(plan), weights_(synth::UnitWeights(plan)), tty_(tty), start_(Clock::now()) {
-    for (const auto& u : plan.units)
-      total_ += u.state == synth::UnitState::kMissing || u.state == synth::UnitState::kStale;
+    for (const auto& u : plan.units) total_ += u.Due();
     for (double w : weights_) total_weight_ += w;
   }
 

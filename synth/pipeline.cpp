@@ -98,7 +98,6 @@ std::string NowUtc() {
 
 std::vector<double> UnitWeights(const RunPlan& plan) {
   constexpr double kSolvePerOlatFrame = 0.5, kMatte = 65, kAssemblePerCamera = 30;
-  auto due = [](const UnitPlan& u) { return u.state == UnitState::kMissing || u.state == UnitState::kStale; };
   auto frames = [](const io::Camera& c) {
     double n = static_cast<double>(c.olat.size() + c.tracking.size() + 2 * c.matte_pairs.size());
     for (const std::string* f : {&c.dark, &c.clean_plate, &c.backlit, &c.lit}) n += f->empty() ? 0 : 1;
@@ -107,11 +106,11 @@ std::vector<double> UnitWeights(const RunPlan& plan) {
   std::vector<double> w(plan.units.size(), 0.0);
   std::vector<int> check_of(plan.sessions.size(), -1);  // a due check unit per session
   for (size_t k = 0; k < plan.units.size(); ++k)
-    if (plan.units[k].stage == StageKind::kCheck && due(plan.units[k]))
+    if (plan.units[k].stage == StageKind::kCheck && plan.units[k].Due())
       check_of[static_cast<size_t>(plan.units[k].session_index)] = static_cast<int>(k);
   for (size_t k = 0; k < plan.units.size(); ++k) {
     const UnitPlan& u = plan.units[k];
-    if (!due(u)) continue;
+    if (!u.Due()) continue;
     const io::Session& s = plan.sessions[static_cast<size_t>(u.session_index)];
     const io::Camera* cam = u.camera_id.empty() ? nullptr : s.FindCamera(u.camera_id);
     switch (u.stage) {
@@ -382,7 +381,7 @@ struct Executor {
     for (size_t k = 0; k < plan->units.size(); ++k) {
       const UnitPlan& unit = plan->units[k];
       if (unit.session_index != check.session_index || unit.stage != StageKind::kNormals || skipped[k]) continue;
-      if (unit.state == UnitState::kMissing || unit.state == UnitState::kStale) due.push_back(static_cast<int>(k));
+      if (unit.Due()) due.push_back(static_cast<int>(k));
     }
     return due;
   }

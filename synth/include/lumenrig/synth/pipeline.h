@@ -70,6 +70,9 @@ struct UnitPlan {
   uint64_t upstream_hash = 0;    ///< combined keys of the units it derives from
   nlohmann::json options_slice;  ///< the options that affect its outputs
   std::vector<int> depends_on;   ///< indices into RunPlan::units
+
+  /// Planned to run: its outputs are missing or stale.
+  bool Due() const { return state == UnitState::kMissing || state == UnitState::kStale; }
 };
 
 struct RunPlan {
