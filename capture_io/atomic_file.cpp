@@ -72,4 +72,16 @@ Status WriteTextFile(const std::string& path, const std::string& text, bool over
   return file.Commit();
 }
 
+Status FirstError(const std::vector<Status>& status) {
+  for (const auto& st : status) LUMENRIG_RETURN_IF_ERROR(st);
+  return Status::Ok();
+}
+
+void RemoveWrittenFiles(const std::vector<std::string>& files, const std::vector<Status>& status) {
+  for (size_t i = 0; i < files.size() && i < status.size(); ++i) {
+    std::error_code ec;
+    if (status[i].ok()) std::filesystem::remove(files[i], ec);
+  }
+}
+
 }  // namespace lumenrig::io

@@ -365,16 +365,9 @@ io::Status WriteMatteOutputs(const MatteResult& result, const io::Session& sessi
   io::ParallelFor(0, static_cast<int64_t>(writers.size()), 1, threads, [&](int64_t b, int64_t e) {
     for (int64_t i = b; i < e; ++i) status[static_cast<size_t>(i)] = writers[static_cast<size_t>(i)]();
   });
-  for (size_t i = 0; i < status.size(); ++i) {
-    if (status[i].ok()) continue;
-    // No partial set: remove what this call wrote, report the first failure.
-    for (size_t j = 0; j < status.size(); ++j) {
-      std::error_code ec;
-      if (status[j].ok()) fs::remove(files[j], ec);
-    }
-    return status[i];
-  }
-  return io::Status::Ok();
+  const io::Status first = io::FirstError(status);
+  if (!first.ok()) io::RemoveWrittenFiles(files, status);  // no partial set
+  return first;
 }
 
 cv::Mat GradientBackground(cv::Size size, const cv::Vec3f& top_rgb, const cv::Vec3f& bottom_rgb) {

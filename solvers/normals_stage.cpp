@@ -617,13 +617,13 @@ std::vector<io::Status> WriteNormalsFiles(const NormalsResult& result, const std
   return status;
 }
 
-// Removes the files of `names` whose status is ok (written by this call).
+// Removes the files of `names` in `out_dir` whose status is ok (written by
+// this call).
 void RemoveWritten(const std::string& out_dir, const std::vector<std::string>& names,
                    const std::vector<io::Status>& status) {
-  for (size_t j = 0; j < names.size() && j < status.size(); ++j) {
-    std::error_code ec;
-    if (status[j].ok()) fs::remove(fs::path(out_dir) / names[j], ec);
-  }
+  std::vector<std::string> paths;
+  for (const auto& name : names) paths.push_back((fs::path(out_dir) / name).string());
+  io::RemoveWrittenFiles(paths, status);
 }
 
 // Refuses existing outputs (unless `overwrite`) before anything is written,
@@ -632,11 +632,6 @@ io::Status PrepareOutputs(const std::vector<std::string>& names, const std::stri
   for (const auto& name : names)
     LUMENRIG_RETURN_IF_ERROR(io::CheckOutputPath((fs::path(out_dir) / name).string(), overwrite));
   return io::EnsureDirectory(out_dir);
-}
-
-io::Status FirstError(const std::vector<io::Status>& status) {
-  for (const auto& st : status) LUMENRIG_RETURN_IF_ERROR(st);
-  return io::Status::Ok();
 }
 
 }  // namespace
@@ -648,7 +643,7 @@ io::Status WriteNormalsOutputs(const NormalsResult& result, const std::string& o
   const auto names = NormalsOutputNames(result);
   LUMENRIG_RETURN_IF_ERROR(PrepareOutputs(names, out_dir, overwrite));
   const auto status = WriteNormalsFiles(result, out_dir, provenance, overwrite, threads, names);
-  const io::Status first = FirstError(status);
+  const io::Status first = io::FirstError(status);
   if (!first.ok()) RemoveWritten(out_dir, names, status);  // no partial output
   return first;
 }
@@ -676,14 +671,14 @@ io::Status FinishNormalsOutputs(NormalsResult* result, const std::string& out_di
   });
   std::vector<std::string> written = maps;
   std::vector<io::Status> status = map_status;
-  io::Status first = FirstError(map_status);
+  io::Status first = io::FirstError(map_status);
   if (first.ok()) first = depth_status;
   if (first.ok()) {
     const std::vector<std::string> rest(names.begin() + static_cast<int64_t>(maps.size()), names.end());
     const auto rest_status = WriteNormalsFiles(*result, out_dir, provenance, overwrite, threads, rest);
     written.insert(written.end(), rest.begin(), rest.end());
     status.insert(status.end(), rest_status.begin(), rest_status.end());
-    first = FirstError(rest_status);
+    first = io::FirstError(rest_status);
   }
   if (!first.ok()) RemoveWritten(out_dir, written, status);  // no partial output
   return first;

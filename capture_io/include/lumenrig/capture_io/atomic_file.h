@@ -5,6 +5,7 @@
 /// unless they asked (`overwrite`).
 
 #include <string>
+#include <vector>
 
 #include "lumenrig/capture_io/status.h"
 
@@ -40,5 +41,13 @@ Status EnsureDirectory(const std::string& dir);
 
 /// Writes text atomically.
 Status WriteTextFile(const std::string& path, const std::string& text, bool overwrite);
+
+/// Outputs written as a set (a stage's files, some written concurrently):
+/// `status[i]` is what the write of `files[i]` returned.
+/// The first failure in list order, or OK.
+Status FirstError(const std::vector<Status>& status);
+/// Removes every file whose write succeeded, so a set with a failure leaves
+/// no partial output behind.
+void RemoveWrittenFiles(const std::vector<std::string>& files, const std::vector<Status>& status);
 
 }  // namespace lumenrig::io
